@@ -1,0 +1,68 @@
+"""The ``hierchoice`` command line. It only parses arguments and calls the public API."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from .exceptions import HierchoiceError
+
+EXIT_BAD_INPUT = 2
+
+
+def _cmd_validate(args: argparse.Namespace) -> int:
+    from .panel import load_panel
+    from .spec import Spec
+
+    spec = Spec.from_toml(args.spec)
+    panel = load_panel(args.data, spec)
+    print(f"{args.data}: valid choice panel")
+    print(panel.summary)
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .demo import run_demo
+
+    run_demo(Path(args.out), persons=args.persons, quick=args.quick, seed=args.seed)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="hierchoice",
+        description="Bayesian hierarchical choice models for panel choice data.",
+    )
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("validate", help="load and check a choice table against a spec; print a summary")
+    p.add_argument("data", help="long (or wide, with a [wide] table in the spec) CSV or Parquet file")
+    p.add_argument("--spec", required=True, help="the TOML spec")
+    p.set_defaults(func=_cmd_validate)
+
+    p = sub.add_parser("demo", help="run the whole job on the invented Harbourline ferry survey")
+    p.add_argument("--out", default="hierchoice-demo", help="output folder (default: hierchoice-demo)")
+    p.add_argument("--persons", type=int, default=300, help="respondents to simulate (default: 300)")
+    p.add_argument("--seed", type=int, default=7, help="simulation seed (default: 7)")
+    p.add_argument("--quick", action="store_true", help="few draws: a smoke run, not for reading results")
+    p.set_defaults(func=_cmd_demo)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args))
+    except HierchoiceError as err:
+        print(f"error: {err}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:  # pragma: no cover
+        print("interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

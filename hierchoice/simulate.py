@@ -1,0 +1,338 @@
+"""Invented panels with known tastes, for the demo, recovery tests and benchmarks.
+
+The demo scenario, *Harbourline* (see ``docs/demo.md``), is a survey for an
+invented commuter ferry across a city harbour: each respondent sees several
+choice tasks with two ferry service options (``ferry_a``, ``ferry_b``) and the
+option to keep their current commute (``none``, the opt-out). Options differ in
+``fare``, ``crossing_time`` (minutes), ``departures_per_hour`` and the ``deck``
+(open, covered, lounge).
+
+Every simulated person has tastes drawn once from the population and kept for
+all their tasks (the panel structure); each task's choice is a logit draw given
+those tastes.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .exceptions import SpecError
+
+__all__ = ["SimAttribute", "SimulatedPanel", "simulate_panel", "ferry_scenario", "benchmark_scenario",
+           "draw_choices"]
+
+
+@dataclass(frozen=True)
+class SimAttribute:
+    """One attribute of an invented design and its true population taste.
+
+    ``levels`` are the values the design draws from (numbers for a numeric
+    attribute, labels for a categorical one, whose first level is the base).
+    ``mean`` and ``sd`` describe the taste: for ``lognormal`` they are the mean
+    and SD of the underlying normal ``eta`` with coefficient ``sign * exp(eta)``.
+    For a categorical attribute give one mean (and sd) per non-base level.
+    """
+
+    name: str
+    levels: Sequence[Any]
+    taste: str = "normal"
+    mean: float | Sequence[float] = 0.0
+    sd: float | Sequence[float] = 0.0
+    sign: str | None = None
+    categorical: bool = False
+
+    def terms(self) -> list[str]:
+        if self.categorical:
+            return [f"{self.name}:{lvl}" for lvl in self.levels[1:]]
+        return [self.name]
+
+
+@dataclass
+class SimulatedPanel:
+    """An invented long table, the spec that reads it, and the true values behind it.
+
+    ``truth`` holds ``taste_mean`` and ``taste_sd`` (pandas Series by model
+    attribute; the underlying normal for lognormal tastes), ``taste_corr``
+    (DataFrame over random attributes), ``person_taste`` (DataFrame: persons ×
+    attributes, the coefficients in the user's units) and, where used,
+    ``covariate_effect`` (DataFrame covariate × attribute) and
+    ``state_dependence``.
+    """
+
+    data: pd.DataFrame
+    spec: dict[str, Any]
+    truth: dict[str, Any] = field(default_factory=dict)
+
+
+def draw_choices(utility: np.ndarray, available: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Draw one logit choice per task: the argmax of utility plus i.i.d. Gumbel noise.
+
+    ``utility`` and ``available`` share a shape whose last axis is the alternative.
+    """
+    noise = rng.gumbel(size=utility.shape)
+    total = np.where(available, utility + noise, -np.inf)
+    return np.argmax(total, axis=-1)
+
+
+def _as_list(value: float | Sequence[float], n: int, what: str) -> list[float]:
+    if isinstance(value, (int, float)):
+        return [float(value)] * n
+    out = [float(v) for v in value]
+    if len(out) != n:
+        raise SpecError(f"{what}: expected {n} values, got {len(out)}.")
+    return out
+
+
+def simulate_panel(
+    attributes: Sequence[SimAttribute],
+    *,
+    n_persons: int = 300,
+    n_tasks: int | tuple[int, int] = 10,
+    alternatives: Sequence[str] = ("a", "b", "c"),
+    opt_out: str | None = None,
+    constants: Mapping[str, float] | None = None,
+    correlation: float | np.ndarray | None = None,
+    covariates: Mapping[str, Mapping[str, float]] | None = None,
+    state_dependence: float | None = None,
+    unavailable_rate: float = 0.0,
+    seed: int = 0,
+    column_names: Mapping[str, str] | None = None,
+) -> SimulatedPanel:
+    """Simulate a long-format panel with known person tastes.
+
+    Parameters
+    ----------
+    attributes : sequence of :class:`SimAttribute`
+        The design's attributes with their true tastes.
+    n_persons : int, default 300
+    n_tasks : int or (min, max), default 10
+        Tasks per person; a pair draws each person's count uniformly (an unbalanced panel).
+    alternatives : sequence of str
+        The designed alternatives (the opt-out, if any, is added after them).
+    opt_out : str, optional
+        Label of a no-choice alternative with utility 0 (plus nothing): constants
+        of the other alternatives are relative to it.
+    constants : mapping alternative -> float, optional
+        Fixed alternative-specific constants (the missing ones are 0).
+    correlation : float or array, optional
+        Correlation of the random tastes' underlying normals: one number for every
+        pair, or a full matrix over the random terms in order.
+    covariates : mapping covariate -> {attribute: shift}, optional
+        Standard-normal person covariates shifting the means of the named tastes.
+    state_dependence : float, optional
+        Coefficient of the lagged choice (1 if chosen in the previous task).
+    unavailable_rate : float, default 0
+        Chance that a designed alternative is unavailable in a task (at least two stay available).
+    seed : int
+    column_names : mapping, optional
+        Names for the person/task/alternative/chosen columns.
+    """
+    rng = np.random.default_rng(seed)
+    names = {"person": "respondent", "task": "task", "alternative": "option", "chosen": "chosen"}
+    names.update(column_names or {})
+    alts = list(alternatives) + ([opt_out] if opt_out else [])
+    n_j = len(alts)
+    n_design = len(alternatives)
+    lo, hi = (n_tasks, n_tasks) if isinstance(n_tasks, int) else n_tasks
+    n_t = hi
+    tasks_of = rng.integers(lo, hi + 1, size=n_persons)
+    task_mask = np.arange(n_t)[None, :] < tasks_of[:, None]
+
+    # --- the design: raw attribute values per (person, task, alternative)
+    raw: dict[str, np.ndarray] = {}
+    terms: list[str] = []
+    term_taste: list[str] = []
+    term_sign: list[float] = []
+    means: list[float] = []
+    sds: list[float] = []
+    columns: dict[str, np.ndarray] = {}
+    for attr in attributes:
+        idx = rng.integers(0, len(attr.levels), size=(n_persons, n_t, n_j))
+        if attr.categorical:
+            for i, lvl in enumerate(attr.levels[1:], start=1):
+                columns[f"{attr.name}:{lvl}"] = (idx == i).astype(float)
+            raw[attr.name] = np.asarray(attr.levels, dtype=object)[idx]
+        else:
+            values = np.asarray(attr.levels, dtype=float)[idx]
+            columns[attr.name] = values
+            raw[attr.name] = values
+        t_names = attr.terms()
+        terms += t_names
+        term_taste += [attr.taste] * len(t_names)
+        term_sign += [(-1.0 if attr.sign == "negative" else 1.0)] * len(t_names)
+        means += _as_list(attr.mean, len(t_names), f"{attr.name}.mean")
+        sds += _as_list(attr.sd, len(t_names), f"{attr.name}.sd") if attr.taste != "fixed" else [0.0] * len(t_names)
+
+    available = np.ones((n_persons, n_t, n_j), dtype=bool)
+    if unavailable_rate > 0:
+        drop = rng.random((n_persons, n_t, n_design)) < unavailable_rate
+        keep_two = np.argsort(rng.random((n_persons, n_t, n_design)), axis=-1)[..., :2]
+        np.put_along_axis(drop, keep_two, False, axis=-1)
+        available[..., :n_design] &= ~drop
+    if opt_out:
+        for arr in columns.values():
+            arr[..., -1] = 0.0
+
+    # --- person tastes
+    n_k = len(terms)
+    mean = np.asarray(means)
+    sd = np.asarray(sds)
+    random_idx = [k for k in range(n_k) if term_taste[k] != "fixed"]
+    corr = np.eye(len(random_idx))
+    if correlation is not None and len(random_idx) > 1:
+        if np.isscalar(correlation):
+            corr = np.full((len(random_idx),) * 2, float(correlation))  # type: ignore[arg-type]
+            np.fill_diagonal(corr, 1.0)
+        else:
+            corr = np.asarray(correlation, dtype=float)
+    cov_names = list(covariates or {})
+    Zc = rng.standard_normal((n_persons, len(cov_names)))
+    gamma = np.zeros((len(cov_names), n_k))
+    for c, (cname, shifts) in enumerate((covariates or {}).items()):
+        for term, value in shifts.items():
+            if term not in terms:
+                raise SpecError(f"covariates[{cname!r}] shifts unknown attribute {term!r}; known: {terms}.")
+            gamma[c, terms.index(term)] = value
+    eta = np.tile(mean, (n_persons, 1)) + Zc @ gamma
+    if random_idx:
+        chol = np.linalg.cholesky(corr)
+        e = rng.standard_normal((n_persons, len(random_idx))) @ chol.T
+        eta[:, random_idx] += e * sd[random_idx]
+    beta = eta.copy()
+    for k in range(n_k):
+        if term_taste[k] == "lognormal":
+            beta[:, k] = term_sign[k] * np.exp(eta[:, k])
+
+    # --- utilities and choices (task by task, for the lagged choice)
+    X = np.stack([columns[t] for t in terms], axis=-1)  # (P, T, J, K)
+    base_u = np.einsum("ptjk,pk->ptj", X, beta)
+    asc = np.zeros(n_j)
+    for alt, value in (constants or {}).items():
+        asc[alts.index(alt)] = value
+    base_u = base_u + asc
+    chosen = np.zeros((n_persons, n_t), dtype=int)
+    lagged = np.zeros((n_persons, n_t, n_j))
+    for t in range(n_t):
+        u = base_u[:, t]
+        if state_dependence is not None and t > 0:
+            lagged[:, t] = np.eye(n_j)[chosen[:, t - 1]]
+            u = u + state_dependence * lagged[:, t]
+        chosen[:, t] = draw_choices(u, available[:, t], rng)
+
+    # --- the long table
+    p, t, j = np.nonzero(task_mask[:, :, None] & np.ones(n_j, dtype=bool))
+    person_ids = np.arange(1, n_persons + 1)
+    data = pd.DataFrame({
+        names["person"]: person_ids[p],
+        names["task"]: t + 1,
+        names["alternative"]: np.asarray(alts, dtype=object)[j],
+        names["chosen"]: (chosen[p, t] == j).astype(int),
+    })
+    for attr in attributes:
+        col = raw[attr.name][p, t, j]
+        if opt_out:
+            col = np.where(j == n_j - 1, None if attr.categorical else np.nan, col)
+        data[attr.name] = col if attr.categorical else col.astype(float)
+    if unavailable_rate > 0:
+        data["available"] = available[p, t, j].astype(int)
+    for c, cname in enumerate(cov_names):
+        data[cname] = Zc[p, c]
+
+    # --- its spec
+    spec: dict[str, Any] = {
+        "columns": dict(names) | ({"available": "available"} if unavailable_rate > 0 else {}),
+        "attributes": {},
+    }
+    for attr in attributes:
+        entry: dict[str, Any] = {"taste": attr.taste}
+        if attr.sign:
+            entry["sign"] = attr.sign
+        if attr.categorical:
+            entry |= {"coding": "dummy", "base": str(attr.levels[0])}
+        spec["attributes"][attr.name] = entry
+    if opt_out or constants:
+        reference = opt_out or next(a for a in alts if a not in (constants or {}))
+        spec["constants"] = {"reference": reference}
+        if opt_out:
+            spec["data"] = {"opt_out": opt_out}
+    if cov_names:
+        spec["covariates"] = {"columns": cov_names}
+    if state_dependence is not None:
+        spec["dynamics"] = {"lagged_choice": True, "first_task": "drop"}
+    if correlation is not None:
+        spec["model"] = {"correlated": True}
+
+    rnd_terms = [terms[k] for k in random_idx]
+    asc_names = [f"asc:{a}" for a in alts if a != spec.get("constants", {}).get("reference")]
+    if "constants" in spec:
+        for name in asc_names:
+            terms.append(name)
+            mean = np.append(mean, (constants or {}).get(name[4:], 0.0))
+            sd = np.append(sd, 0.0)
+            beta = np.column_stack([beta, np.full(n_persons, (constants or {}).get(name[4:], 0.0))])
+            gamma = np.column_stack([gamma, np.zeros(len(cov_names))])
+    truth: dict[str, Any] = {
+        "taste_mean": pd.Series(mean, index=terms, name="taste_mean"),
+        "taste_sd": pd.Series(sd, index=terms, name="taste_sd")[[t for t in terms if t in rnd_terms]],
+        "taste_corr": pd.DataFrame(corr, index=rnd_terms, columns=rnd_terms),
+        "person_taste": pd.DataFrame(beta, index=pd.Index(person_ids, name="person"), columns=terms),
+        "tastes": dict(zip(terms, term_taste + ["fixed"] * len(asc_names))),
+    }
+    if cov_names:
+        truth["covariate_effect"] = pd.DataFrame(gamma, index=cov_names, columns=terms)
+    if state_dependence is not None:
+        truth["state_dependence"] = float(state_dependence)
+    return SimulatedPanel(data=data, spec=spec, truth=truth)
+
+
+def ferry_scenario(
+    n_persons: int = 300,
+    n_tasks: int | tuple[int, int] = (8, 12),
+    *,
+    correlated: bool = True,
+    seed: int = 7,
+) -> SimulatedPanel:
+    """The Harbourline commuter-ferry survey (the demo), with an opt-out and a lognormal fare taste."""
+    attributes = [
+        SimAttribute("fare", levels=[2.0, 3.0, 4.0, 5.0, 6.0, 7.0], taste="lognormal", mean=np.log(0.45),
+                     sd=0.5, sign="negative"),
+        SimAttribute("crossing_time", levels=[15.0, 20.0, 25.0, 30.0, 40.0], taste="normal", mean=-0.06, sd=0.03),
+        SimAttribute("departures_per_hour", levels=[1.0, 2.0, 4.0, 6.0], taste="normal", mean=0.3, sd=0.2),
+        SimAttribute("deck", levels=["open", "covered", "lounge"], taste="normal", mean=[0.4, 0.7], sd=[0.3, 0.5],
+                     categorical=True),
+    ]
+    sim = simulate_panel(
+        attributes, n_persons=n_persons, n_tasks=n_tasks, alternatives=("ferry_a", "ferry_b"), opt_out="none",
+        constants={"ferry_a": 2.0, "ferry_b": 2.0}, correlation=(0.3 if correlated else None), seed=seed,
+    )
+    sim.spec["model"] = sim.spec.get("model", {}) | {"price": "fare"}
+    sim.spec["sampling"] = {"chains": 2, "draws": 500, "tune": 500}
+    return sim
+
+
+def benchmark_scenario(
+    n_persons: int = 1000,
+    n_tasks: int = 10,
+    n_alternatives: int = 3,
+    n_attributes: int = 4,
+    *,
+    correlated: bool = False,
+    seed: int = 1,
+) -> SimulatedPanel:
+    """A generic panel of normal tastes (the B1 / B3 benchmark shapes)."""
+    rng = np.random.default_rng(seed + 10_000)
+    attributes = [
+        SimAttribute(f"x{k + 1}", levels=np.round(np.linspace(-1.5, 1.5, 7), 2).tolist(), taste="normal",
+                     mean=float(rng.choice([-1, 1]) * rng.uniform(0.4, 1.0)), sd=float(rng.uniform(0.3, 0.8)))
+        for k in range(n_attributes)
+    ]
+    return simulate_panel(
+        attributes, n_persons=n_persons, n_tasks=n_tasks,
+        alternatives=tuple(f"alt{j + 1}" for j in range(n_alternatives)),
+        correlation=(0.3 if correlated else None), seed=seed,
+    )

@@ -1,0 +1,609 @@
+"""The model specification: which column plays which role, and what each taste is.
+
+A spec is read from a TOML file (``tomllib``) or built from a plain ``dict`` of the
+same shape. Every key is checked: an unknown key is an error that suggests the
+nearest known one, so a typo never silently changes a model. The full key
+reference lives in ``docs/spec.md``.
+
+Example
+-------
+>>> spec = Spec.from_dict({
+...     "columns": {"person": "respondent", "task": "task",
+...                 "alternative": "option", "chosen": "chosen"},
+...     "attributes": {"fare": {"taste": "lognormal", "sign": "negative"},
+...                    "crossing_time": {"taste": "normal"}},
+... })
+>>> spec.attributes["fare"].taste
+'lognormal'
+"""
+
+from __future__ import annotations
+
+import copy
+import difflib
+import tomllib
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+from .exceptions import SpecError
+
+__all__ = [
+    "TASTES",
+    "ColumnRoles",
+    "AttributeSpec",
+    "ConstantsSpec",
+    "CovariatesSpec",
+    "DynamicsSpec",
+    "WideSpec",
+    "DataOptions",
+    "ModelOptions",
+    "SamplingOptions",
+    "Spec",
+    "load_spec",
+]
+
+#: Taste distributions an attribute may have across people.
+TASTES = ("fixed", "normal", "lognormal")
+SIGNS = ("positive", "negative")
+CODINGS = ("numeric", "dummy", "effects")
+FIRST_TASK_POLICIES = ("drop", "flag")
+TASK_SCOPES = ("person", "global")
+INVALID_TASK_POLICIES = ("error", "drop")
+PARAMETERIZATIONS = ("noncentred", "centred")
+BACKENDS = ("auto", "pymc", "nutpie", "numpyro")
+
+
+def _check_keys(table: Mapping[str, Any], allowed: set[str], where: str) -> None:
+    if not isinstance(table, Mapping):
+        raise SpecError(f"[{where}] must be a table of keys, got {type(table).__name__}: {table!r}.")
+    for key in table:
+        if key not in allowed:
+            close = difflib.get_close_matches(str(key), sorted(allowed), n=1)
+            hint = f" Did you mean {close[0]!r}?" if close else ""
+            raise SpecError(
+                f"Unknown key {key!r} in [{where}]; known keys: {', '.join(sorted(allowed))}.{hint}"
+            )
+
+
+def _choice(value: Any, options: tuple[str, ...], where: str) -> str:
+    if value not in options:
+        close = difflib.get_close_matches(str(value), options, n=1)
+        hint = f" Did you mean {close[0]!r}?" if close else ""
+        raise SpecError(f"{where} = {value!r} is not one of: {', '.join(options)}.{hint}")
+    return str(value)
+
+
+def _str(value: Any, where: str) -> str:
+    if not isinstance(value, str) or not value:
+        raise SpecError(f"{where} must be a non-empty string (a column or label name), got {value!r}.")
+    return value
+
+
+def _str_list(value: Any, where: str) -> tuple[str, ...]:
+    if isinstance(value, str):
+        value = [value]
+    if not isinstance(value, (list, tuple)) or not all(isinstance(v, str) and v for v in value):
+        raise SpecError(f"{where} must be a list of names, got {value!r}.")
+    if len(set(value)) != len(value):
+        raise SpecError(f"{where} lists a name twice: {value!r}.")
+    return tuple(value)
+
+
+def _bool(value: Any, where: str) -> bool:
+    if not isinstance(value, bool):
+        raise SpecError(f"{where} must be true or false, got {value!r}.")
+    return value
+
+
+def _positive_int(value: Any, where: str, *, minimum: int = 1) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+        raise SpecError(f"{where} must be a whole number >= {minimum}, got {value!r}.")
+    return value
+
+
+@dataclass(frozen=True)
+class ColumnRoles:
+    """Which column of the long table plays which role.
+
+    Parameters
+    ----------
+    person, task, alternative, chosen : str
+        Column names of the person id, the choice-task id, the alternative id and
+        the 0/1 (or boolean) chosen indicator.
+    available : str, optional
+        Column of a 0/1 availability indicator. Rows absent from a task are
+        unavailable in any case.
+    """
+
+    person: str
+    task: str
+    alternative: str
+    chosen: str
+    available: str | None = None
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> ColumnRoles:
+        _check_keys(table, {"person", "task", "alternative", "chosen", "available"}, "columns")
+        missing = [k for k in ("person", "task", "alternative", "chosen") if k not in table]
+        if missing:
+            raise SpecError(
+                f"[columns] must name the {', '.join(missing)} column(s), e.g. person = \"respondent\"."
+            )
+        values = {k: _str(v, f"columns.{k}") for k, v in table.items()}
+        used = [v for v in values.values()]
+        if len(set(used)) != len(used):
+            raise SpecError(f"[columns] gives one column two roles: {values!r}.")
+        return cls(**values)
+
+
+@dataclass(frozen=True)
+class AttributeSpec:
+    """How one attribute enters utility and how its taste varies across people.
+
+    Parameters
+    ----------
+    name : str
+        The attribute's name (the column name unless ``column`` is given).
+    taste : {"fixed", "normal", "lognormal"}
+        ``fixed``: one coefficient shared by everyone; ``normal``: person
+        coefficients drawn from a normal distribution; ``lognormal``: ``sign *
+        exp(eta)`` with ``eta`` normal, for tastes whose sign is known.
+    sign : {"positive", "negative"}, optional
+        Required for lognormal tastes.
+    coding : {"numeric", "dummy", "effects"}, default "numeric"
+        How a categorical attribute is turned into columns. ``dummy``: one 0/1
+        column per non-base level; ``effects``: 1 for the level, -1 for the base.
+    base : str, optional
+        The base level of a categorical attribute (required for dummy/effects).
+    column : str, optional
+        The table column holding the attribute, if it differs from ``name``.
+    """
+
+    name: str
+    taste: str = "fixed"
+    sign: str | None = None
+    coding: str = "numeric"
+    base: str | None = None
+    column: str | None = None
+
+    @property
+    def source(self) -> str:
+        return self.column or self.name
+
+    @classmethod
+    def from_dict(cls, name: str, table: Mapping[str, Any]) -> AttributeSpec:
+        where = f"attributes.{name}"
+        _check_keys(table, {"taste", "sign", "coding", "base", "column"}, where)
+        taste = _choice(table.get("taste", "fixed"), TASTES, f"{where}.taste")
+        sign = table.get("sign")
+        if sign is not None:
+            sign = _choice(sign, SIGNS, f"{where}.sign")
+        if taste == "lognormal" and sign is None:
+            raise SpecError(
+                f"{where}: a lognormal taste needs sign = \"positive\" or \"negative\" "
+                "(the coefficient is sign * exp(eta))."
+            )
+        if taste != "lognormal" and sign is not None:
+            raise SpecError(f"{where}: sign is only used with taste = \"lognormal\", not {taste!r}.")
+        coding = _choice(table.get("coding", "numeric"), CODINGS, f"{where}.coding")
+        base = table.get("base")
+        if coding != "numeric":
+            if base is None:
+                raise SpecError(f"{where}: coding = {coding!r} needs base = \"<level>\" (the reference level).")
+            base = str(base)
+        elif base is not None:
+            raise SpecError(f"{where}: base is only used with coding = \"dummy\" or \"effects\".")
+        if coding != "numeric" and taste == "lognormal":
+            raise SpecError(f"{where}: a categorical attribute cannot have a lognormal taste.")
+        column = table.get("column")
+        if column is not None:
+            column = _str(column, f"{where}.column")
+        return cls(name=name, taste=taste, sign=sign, coding=coding, base=base, column=column)
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"taste": self.taste}
+        for key in ("sign", "base", "column"):
+            if getattr(self, key) is not None:
+                out[key] = getattr(self, key)
+        if self.coding != "numeric":
+            out["coding"] = self.coding
+        return out
+
+
+@dataclass(frozen=True)
+class ConstantsSpec:
+    """Alternative-specific constants: one per alternative but the reference."""
+
+    reference: str
+    taste: str = "fixed"
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> ConstantsSpec:
+        _check_keys(table, {"reference", "taste"}, "constants")
+        if "reference" not in table:
+            raise SpecError(
+                "[constants] needs reference = \"<alternative>\": the alternative whose constant is 0."
+            )
+        taste = _choice(table.get("taste", "fixed"), ("fixed", "normal"), "constants.taste")
+        return cls(reference=str(table["reference"]), taste=taste)
+
+
+@dataclass(frozen=True)
+class CovariatesSpec:
+    """Person-level covariates that shift the population means of tastes."""
+
+    columns: tuple[str, ...]
+    shifts: tuple[str, ...] | None = None  # None: every attribute
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> CovariatesSpec:
+        _check_keys(table, {"columns", "shifts"}, "covariates")
+        if "columns" not in table:
+            raise SpecError("[covariates] needs columns = [\"<column>\", ...].")
+        shifts = table.get("shifts")
+        return cls(
+            columns=_str_list(table["columns"], "covariates.columns"),
+            shifts=None if shifts is None else _str_list(shifts, "covariates.shifts"),
+        )
+
+
+@dataclass(frozen=True)
+class DynamicsSpec:
+    """Panel transforms for simple dynamics ("naive dynamics").
+
+    ``lagged_choice`` adds the attribute ``lagged_choice`` (1 if the person chose
+    this alternative in their previous task); ``lag`` and ``lead`` add
+    ``<attribute>_lag`` / ``<attribute>_lead`` (the value for the same
+    alternative in the previous / next task). Rows where the lag or lead does not
+    exist (the first task, or an alternative absent from the neighbouring task)
+    follow ``first_task``: ``"drop"`` removes those tasks from estimation (counted
+    in the validation summary), ``"flag"`` keeps them with the missing value set
+    to 0 and marks them in the panel's ``lag_missing`` mask.
+    ``initial_conditions`` adds the person's first observed choice (and the
+    person means of the attributes in ``initial_means``) as person covariates
+    (Wooldridge 2005, J. Applied Econometrics 20(1)).
+    """
+
+    lagged_choice: bool = False
+    lag: tuple[str, ...] = ()
+    lead: tuple[str, ...] = ()
+    first_task: str = "drop"
+    initial_conditions: bool = False
+    initial_means: tuple[str, ...] = ()
+    taste: str = "fixed"
+
+    @property
+    def active(self) -> bool:
+        return self.lagged_choice or bool(self.lag) or bool(self.lead)
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> DynamicsSpec:
+        _check_keys(
+            table,
+            {"lagged_choice", "lag", "lead", "first_task", "initial_conditions", "initial_means", "taste"},
+            "dynamics",
+        )
+        out = cls(
+            lagged_choice=_bool(table.get("lagged_choice", False), "dynamics.lagged_choice"),
+            lag=_str_list(table.get("lag", []), "dynamics.lag"),
+            lead=_str_list(table.get("lead", []), "dynamics.lead"),
+            first_task=_choice(table.get("first_task", "drop"), FIRST_TASK_POLICIES, "dynamics.first_task"),
+            initial_conditions=_bool(table.get("initial_conditions", False), "dynamics.initial_conditions"),
+            initial_means=_str_list(table.get("initial_means", []), "dynamics.initial_means"),
+            taste=_choice(table.get("taste", "fixed"), ("fixed", "normal"), "dynamics.taste"),
+        )
+        if out.initial_means and not out.initial_conditions:
+            raise SpecError("dynamics.initial_means needs initial_conditions = true.")
+        if out.initial_conditions and not out.lagged_choice:
+            raise SpecError(
+                "dynamics.initial_conditions is the treatment of the initial-conditions problem of "
+                "state dependence; it needs lagged_choice = true."
+            )
+        return out
+
+
+@dataclass(frozen=True)
+class WideSpec:
+    """How to read a wide table (one row per task, one column per attribute per alternative).
+
+    ``pattern`` builds the column name from ``{attribute}`` and ``{alternative}``;
+    ``choice`` is the column holding the chosen alternative, whose values are
+    mapped to alternatives by ``choice_labels`` (identity if omitted).
+    """
+
+    alternatives: tuple[str, ...]
+    choice: str
+    pattern: str = "{attribute}_{alternative}"
+    choice_labels: Mapping[str, str] | None = None
+    available_pattern: str | None = None
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> WideSpec:
+        _check_keys(
+            table, {"alternatives", "choice", "pattern", "choice_labels", "available_pattern"}, "wide"
+        )
+        for key in ("alternatives", "choice"):
+            if key not in table:
+                raise SpecError(f"[wide] needs {key}.")
+        pattern = _str(table.get("pattern", "{attribute}_{alternative}"), "wide.pattern")
+        if "{attribute}" not in pattern or "{alternative}" not in pattern:
+            raise SpecError(f"wide.pattern {pattern!r} must contain {{attribute}} and {{alternative}}.")
+        labels = table.get("choice_labels")
+        if labels is not None:
+            _check_keys(labels, set(labels), "wide.choice_labels")
+            labels = {str(k): str(v) for k, v in labels.items()}
+        avail = table.get("available_pattern")
+        return cls(
+            alternatives=_str_list([str(a) for a in table["alternatives"]], "wide.alternatives"),
+            choice=_str(table["choice"], "wide.choice"),
+            pattern=pattern,
+            choice_labels=labels,
+            available_pattern=None if avail is None else _str(avail, "wide.available_pattern"),
+        )
+
+
+@dataclass(frozen=True)
+class DataOptions:
+    """How the table is read: alternative order, opt-out, task-id scope, invalid tasks."""
+
+    alternatives: tuple[str, ...] | None = None
+    opt_out: str | None = None
+    task_scope: str = "person"
+    invalid_tasks: str = "error"
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> DataOptions:
+        _check_keys(table, {"alternatives", "opt_out", "task_scope", "invalid_tasks"}, "data")
+        alts = table.get("alternatives")
+        opt_out = table.get("opt_out")
+        return cls(
+            alternatives=None if alts is None else _str_list([str(a) for a in alts], "data.alternatives"),
+            opt_out=None if opt_out is None else str(opt_out),
+            task_scope=_choice(table.get("task_scope", "person"), TASK_SCOPES, "data.task_scope"),
+            invalid_tasks=_choice(table.get("invalid_tasks", "error"), INVALID_TASK_POLICIES, "data.invalid_tasks"),
+        )
+
+
+@dataclass(frozen=True)
+class ModelOptions:
+    """Model-level options: correlation, parameterisation, willingness-to-pay space."""
+
+    correlated: bool = False
+    parameterization: str = "noncentred"
+    wtp_space: bool = False
+    price: str | None = None
+    prior_scale: float = 1.0
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> ModelOptions:
+        _check_keys(table, {"correlated", "parameterization", "wtp_space", "price", "prior_scale"}, "model")
+        price = table.get("price")
+        scale = table.get("prior_scale", 1.0)
+        if isinstance(scale, bool) or not isinstance(scale, (int, float)) or not scale > 0:
+            raise SpecError(f"model.prior_scale must be a positive number, got {scale!r}.")
+        out = cls(
+            correlated=_bool(table.get("correlated", False), "model.correlated"),
+            parameterization=_choice(
+                table.get("parameterization", "noncentred"), PARAMETERIZATIONS, "model.parameterization"
+            ),
+            wtp_space=_bool(table.get("wtp_space", False), "model.wtp_space"),
+            price=None if price is None else _str(price, "model.price"),
+            prior_scale=float(scale),
+        )
+        if out.wtp_space and out.price is None:
+            raise SpecError("model.wtp_space = true needs price = \"<attribute>\" (the price attribute).")
+        return out
+
+
+@dataclass(frozen=True)
+class SamplingOptions:
+    """NUTS settings; command-line options override them."""
+
+    chains: int = 2
+    draws: int = 1000
+    tune: int = 1000
+    target_accept: float = 0.85
+    seed: int = 20261202
+    backend: str = "auto"
+    store_person_draws: bool = True
+    cores: int | None = None
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> SamplingOptions:
+        _check_keys(
+            table,
+            {"chains", "draws", "tune", "target_accept", "seed", "backend", "store_person_draws", "cores"},
+            "sampling",
+        )
+        ta = table.get("target_accept", 0.85)
+        if isinstance(ta, bool) or not isinstance(ta, (int, float)) or not 0.5 <= ta < 1:
+            raise SpecError(f"sampling.target_accept must be in [0.5, 1), got {ta!r}.")
+        cores = table.get("cores")
+        return cls(
+            chains=_positive_int(table.get("chains", 2), "sampling.chains"),
+            draws=_positive_int(table.get("draws", 1000), "sampling.draws"),
+            tune=_positive_int(table.get("tune", 1000), "sampling.tune", minimum=0),
+            target_accept=float(ta),
+            seed=_positive_int(table.get("seed", 20261202), "sampling.seed", minimum=0),
+            backend=_choice(table.get("backend", "auto"), BACKENDS, "sampling.backend"),
+            store_person_draws=_bool(table.get("store_person_draws", True), "sampling.store_person_draws"),
+            cores=None if cores is None else _positive_int(cores, "sampling.cores"),
+        )
+
+
+_TOP_KEYS = {
+    "columns", "attributes", "constants", "covariates", "dynamics", "wide", "data", "model", "sampling",
+}
+
+
+@dataclass(frozen=True)
+class Spec:
+    """A whole model specification. Build it with :meth:`from_toml` or :meth:`from_dict`."""
+
+    columns: ColumnRoles
+    attributes: Mapping[str, AttributeSpec]
+    constants: ConstantsSpec | None = None
+    covariates: CovariatesSpec | None = None
+    dynamics: DynamicsSpec = field(default_factory=DynamicsSpec)
+    wide: WideSpec | None = None
+    data: DataOptions = field(default_factory=DataOptions)
+    model: ModelOptions = field(default_factory=ModelOptions)
+    sampling: SamplingOptions = field(default_factory=SamplingOptions)
+
+    @classmethod
+    def from_dict(cls, table: Mapping[str, Any]) -> Spec:
+        """Build and check a spec from a nested mapping shaped like the TOML file."""
+        _check_keys(table, _TOP_KEYS, "top level")
+        if "columns" not in table:
+            raise SpecError("The spec needs a [columns] table naming person, task, alternative and chosen.")
+        attrs_table = table.get("attributes", {})
+        _check_keys(attrs_table, set(attrs_table), "attributes")
+        attributes = {str(n): AttributeSpec.from_dict(str(n), t) for n, t in attrs_table.items()}
+        dynamics = DynamicsSpec.from_dict(table.get("dynamics", {}))
+        if not attributes and not dynamics.active and "constants" not in table:
+            raise SpecError(
+                "The spec has no [attributes.<name>] tables: at least one attribute (or constants) is needed."
+            )
+        spec = cls(
+            columns=ColumnRoles.from_dict(table["columns"]),
+            attributes=attributes,
+            constants=ConstantsSpec.from_dict(table["constants"]) if "constants" in table else None,
+            covariates=CovariatesSpec.from_dict(table["covariates"]) if "covariates" in table else None,
+            dynamics=dynamics,
+            wide=WideSpec.from_dict(table["wide"]) if "wide" in table else None,
+            data=DataOptions.from_dict(table.get("data", {})),
+            model=ModelOptions.from_dict(table.get("model", {})),
+            sampling=SamplingOptions.from_dict(table.get("sampling", {})),
+        )
+        spec._check_consistency()
+        return spec
+
+    @classmethod
+    def from_toml(cls, path: str | Path) -> Spec:
+        """Read a spec from a TOML file."""
+        path = Path(path)
+        try:
+            with path.open("rb") as fh:
+                table = tomllib.load(fh)
+        except FileNotFoundError:
+            raise SpecError(f"Spec file {str(path)!r} does not exist.") from None
+        except tomllib.TOMLDecodeError as err:
+            raise SpecError(f"Spec file {str(path)!r} is not valid TOML: {err}.") from None
+        return cls.from_dict(table)
+
+    def _check_consistency(self) -> None:
+        roles = {self.columns.person, self.columns.task, self.columns.alternative, self.columns.chosen}
+        for attr in self.attributes.values():
+            if attr.source in roles:
+                raise SpecError(f"attributes.{attr.name} uses column {attr.source!r}, which is an id/role column.")
+        names = set(self.attribute_names_declared)
+        for kind, items in (("lag", self.dynamics.lag), ("lead", self.dynamics.lead),
+                            ("initial_means", self.dynamics.initial_means)):
+            for item in items:
+                if item not in names:
+                    raise SpecError(f"dynamics.{kind} names {item!r}, which is not in [attributes].")
+                if self.attributes[item].coding != "numeric":
+                    raise SpecError(f"dynamics.{kind} names {item!r}, a categorical attribute: only numeric ones.")
+        if self.model.price is not None:
+            if self.model.price not in names:
+                raise SpecError(f"model.price = {self.model.price!r} is not in [attributes].")
+            if self.attributes[self.model.price].coding != "numeric":
+                raise SpecError(f"model.price = {self.model.price!r} must be a numeric attribute.")
+        if self.covariates is not None:
+            clash = set(self.covariates.columns) & roles
+            if clash:
+                raise SpecError(f"covariates.columns includes the role column(s) {sorted(clash)}.")
+        if self.data.opt_out is not None and self.constants is None:
+            # common practice: an opt-out without a constant forces its utility to 0 while
+            # every other alternative's is x·beta, which confounds the scale of x with "buy".
+            raise SpecError(
+                "data.opt_out is set but there is no [constants] table: an opt-out alternative needs "
+                "alternative-specific constants (usually reference = the opt-out)."
+            )
+
+    @property
+    def attribute_names_declared(self) -> tuple[str, ...]:
+        return tuple(self.attributes)
+
+    def with_sampling(self, **overrides: Any) -> Spec:
+        """A copy with some sampling options replaced (``None`` values are ignored)."""
+        values = {k: v for k, v in overrides.items() if v is not None}
+        if not values:
+            return self
+        merged = asdict(self.sampling) | values
+        return replace(self, sampling=SamplingOptions.from_dict(merged))
+
+    def to_dict(self) -> dict[str, Any]:
+        """The spec as a nested dict that :meth:`from_dict` reads back to an equal spec."""
+        out: dict[str, Any] = {
+            "columns": {k: v for k, v in asdict(self.columns).items() if v is not None},
+            "attributes": {n: a.to_dict() for n, a in self.attributes.items()},
+        }
+        for name in ("constants", "covariates", "wide"):
+            value = getattr(self, name)
+            if value is not None:
+                out[name] = _drop_none(asdict(value))
+        for name in ("dynamics", "data", "model", "sampling"):
+            out[name] = _drop_none(asdict(getattr(self, name)))
+        return out
+
+    def to_toml(self) -> str:
+        """The spec as TOML text."""
+        return dumps_toml(self.to_dict())
+
+
+def _drop_none(table: dict[str, Any]) -> dict[str, Any]:
+    return {k: (list(v) if isinstance(v, tuple) else copy.deepcopy(v)) for k, v in table.items() if v is not None}
+
+
+def load_spec(spec: Spec | Mapping[str, Any] | str | Path) -> Spec:
+    """Accept a :class:`Spec`, a mapping, or a path to a TOML file."""
+    if isinstance(spec, Spec):
+        return spec
+    if isinstance(spec, Mapping):
+        return Spec.from_dict(spec)
+    if isinstance(spec, (str, Path)):
+        return Spec.from_toml(spec)
+    raise SpecError(f"A spec must be a Spec, a dict or a path to a TOML file, not {type(spec).__name__}.")
+
+
+# --- a small TOML writer (enough for specs: strings, numbers, booleans, lists, nested tables) ---
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, str):
+        escaped = value.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
+        return f'"{escaped}"'
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, Mapping):
+        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(v)}" for k, v in value.items()) + " }"
+    raise SpecError(f"Cannot write {value!r} to TOML.")
+
+
+def _toml_key(key: str) -> str:
+    if key and all(c.isalnum() or c in "_-" for c in key):
+        return key
+    return _toml_value(str(key))
+
+
+def dumps_toml(table: Mapping[str, Any], prefix: str = "") -> str:
+    """Write a nested mapping as TOML (tables for nested mappings, inline otherwise)."""
+    lines: list[str] = []
+    scalars = {k: v for k, v in table.items() if not isinstance(v, Mapping) or k.endswith("_labels")}
+    tables = {k: v for k, v in table.items() if k not in scalars}
+    if prefix and (scalars or not tables):
+        lines.append(f"[{prefix}]")
+    for key, value in scalars.items():
+        lines.append(f"{_toml_key(key)} = {_toml_value(value)}")
+    if lines:
+        lines.append("")
+    for key, value in tables.items():
+        sub = f"{prefix}.{_toml_key(key)}" if prefix else _toml_key(key)
+        lines.append(dumps_toml(value, sub))
+    return "\n".join(lines)
