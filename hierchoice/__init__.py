@@ -1,7 +1,16 @@
 """hierchoice: Bayesian hierarchical (panel mixed) logit models for choice panels."""
 
+import logging as _logging
+
+# PyTensor warns at import when it links BLAS through NumPy (pip installs); the
+# message is about speed, not correctness, and would be the first thing users see.
+_logging.getLogger("pytensor.tensor.blas").setLevel(_logging.ERROR)
+
 from .exceptions import ArchiveError, DataError, FitError, HierchoiceError, SpecError
 from .panel import ChoicePanel, Term, ValidationSummary, load_panel, long_to_wide, read_table, wide_to_long
+from .fit import ChoiceFit, fit, population_summary, task_log_likelihood
+from .archive import load_fit, save_fit
+from .model import build_model, model_layout
 from .simulate import SimAttribute, SimulatedPanel, benchmark_scenario, ferry_scenario, simulate_panel
 from .spec import Spec, load_spec
 
@@ -9,6 +18,14 @@ __version__ = "0.1.0"
 
 __all__ = [
     "ArchiveError",
+    "ChoiceFit",
+    "build_model",
+    "fit",
+    "load_fit",
+    "model_layout",
+    "population_summary",
+    "save_fit",
+    "task_log_likelihood",
     "ChoicePanel",
     "DataError",
     "FitError",

@@ -23,6 +23,24 @@ def _cmd_validate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_fit(args: argparse.Namespace) -> int:
+    from .archive import save_fit
+    from .fit import fit
+    from .panel import load_panel
+    from .spec import Spec
+
+    spec = Spec.from_toml(args.spec)
+    panel = load_panel(args.data, spec)
+    print(panel.summary)
+    result = fit(panel, spec, draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed,
+                 backend=args.backend, progressbar=not args.quiet)
+    out = save_fit(result, args.out)
+    print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
+    print(result.population().to_string(float_format=lambda v: f"{v:.4g}"))
+    print(f"\nresults written to {out}/ (check convergence before reading them: hierchoice check {out})")
+    return 0
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
 
@@ -41,6 +59,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("data", help="long (or wide, with a [wide] table in the spec) CSV or Parquet file")
     p.add_argument("--spec", required=True, help="the TOML spec")
     p.set_defaults(func=_cmd_validate)
+
+    p = sub.add_parser("fit", help="fit the hierarchical logit with NUTS and write a results folder")
+    p.add_argument("data", help="long (or wide) CSV or Parquet file")
+    p.add_argument("--spec", required=True, help="the TOML spec")
+    p.add_argument("--out", required=True, help="results folder (replaced atomically)")
+    p.add_argument("--draws", type=int, help="draws per chain (overrides [sampling])")
+    p.add_argument("--tune", type=int, help="tuning steps per chain")
+    p.add_argument("--chains", type=int, help="number of chains")
+    p.add_argument("--seed", type=int, help="random seed: the same seed gives the same posterior")
+    p.add_argument("--backend", choices=["auto", "pymc", "nutpie", "numpyro"], help="NUTS implementation")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=_cmd_fit)
 
     p = sub.add_parser("demo", help="run the whole job on the invented Harbourline ferry survey")
     p.add_argument("--out", default="hierchoice-demo", help="output folder (default: hierchoice-demo)")

@@ -173,7 +173,7 @@ def _check_id_column(frame: pd.DataFrame, col: str) -> None:
 
 def _as_indicator(frame: pd.DataFrame, col: str, role: str) -> pd.Series:
     values = frame[col]
-    if pd.api.types.is_bool_dtype(values):
+    if pd.api.types.is_bool_dtype(values) and not values.isna().any():
         return values.astype(bool)
     numeric = pd.to_numeric(values, errors="coerce") if not pd.api.types.is_numeric_dtype(values) else values
     bad = numeric.isna() | ~numeric.isin([0, 1])
@@ -347,10 +347,12 @@ class ChoicePanel:
                                            else v) for k, v in vars(self.summary).items()})
         summary.count_removed(reason, int(self.task_mask.sum() - keep.sum()))
         persons_kept = keep.any(axis=1)
+        if not persons_kept.any():
+            raise DataError(f"with_tasks({reason!r}) keeps no task: at least one task must be kept.")
         summary.count_removed(f"persons left with no task ({reason})", int((~persons_kept).sum()))
-        keep = keep[persons_kept]
-        order = np.argsort(~keep, axis=1, kind="stable")
-        width = max(int(keep.sum(axis=1).max(initial=0)), 1)
+        kept = keep[persons_kept]
+        order = np.argsort(~kept, axis=1, kind="stable")
+        width = max(int(kept.sum(axis=1).max(initial=0)), 1)
         order = order[:, :width]
 
         def take(a: np.ndarray) -> np.ndarray:
@@ -504,6 +506,11 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
             _check_missing(df, attr.source, missing, exempt, summary)
             labels = col.map(lambda v: None if pd.isna(v) else _label(v))
             levels = sorted(set(labels[~missing & ~exempt]))
+            if len(levels) == 1:
+                raise DataError(
+                    f"Attribute column {attr.source!r} has one level ({levels[0]!r}) over every available "
+                    "alternative: its taste is not identified. Remove it from the spec."
+                )
             if attr.base not in levels:
                 raise DataError(
                     f"attributes.{attr.name}.base = {attr.base!r} is not a level of column {attr.source!r} "
@@ -543,11 +550,15 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
 
     # 7. identification: an attribute must vary over available alternatives
     for term in terms:
-        v = values[term.name][avail]
+        # the opt-out's attributes are 0 by construction; an attribute constant over the other
+        # alternatives is then collinear with the alternative-specific constants
+        rows = avail if term.kind in ("constant", "lagged_choice") else avail & ~is_opt_out
+        v = values[term.name][rows]
         if len(v) and v.min() == v.max():
+            column = f" (column {spec.attributes[term.source].source!r})" if term.source in spec.attributes else ""
             raise DataError(
-                f"Attribute {term.name!r} is constant ({v.iloc[0]:g}) over every available alternative: its "
-                "taste is not identified. Remove it from the spec."
+                f"Attribute {term.name!r}{column} is constant ({v.iloc[0]:g}) over every available "
+                "alternative: its taste is not identified. Remove it from the spec."
             )
     if not terms:
         raise DataError("The spec gives no attribute, constant or dynamic term: the model would have no taste.")
@@ -582,7 +593,8 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
             cov_names.append(c)
             cov_values.append(col.groupby(person_codes).first().to_numpy(float))
     if spec.dynamics.initial_conditions:
-        names, vals = _initial_conditions(df, values, chosen, spec, alternatives, person_codes)
+        names, vals = _initial_conditions(df, values, chosen, spec, alternatives, person_codes,
+                                          rows=avail & ~is_opt_out)
         cov_names += names
         cov_values += vals
     for name, v in zip(cov_names, cov_values):
@@ -744,8 +756,13 @@ def _initial_conditions(
     spec: Spec,
     alternatives: Sequence[str],
     person_codes: np.ndarray,
+    rows: pd.Series | None = None,
 ) -> tuple[list[str], list[np.ndarray]]:
-    """Wooldridge (2005) covariates: the first observed choice and person means of attributes."""
+    """Wooldridge (2005) covariates: the first observed choice and person means of attributes.
+
+    The means are over ``rows`` (the available, non-opt-out rows): unavailable and opt-out
+    rows carry a filled 0, not an attribute value.
+    """
     reference = spec.constants.reference if spec.constants else alternatives[0]
     first = df["_first_chosen"].groupby(person_codes).first()
     names, vals = [], []
@@ -754,9 +771,17 @@ def _initial_conditions(
             continue
         names.append(f"first_choice:{alt}")
         vals.append((first == alt).to_numpy(float))
+    use = np.ones(len(df), dtype=bool) if rows is None else np.asarray(rows, dtype=bool)
     for attr in spec.dynamics.initial_means:
+        means = values[attr].where(use).groupby(person_codes).mean()
+        if means.isna().any():
+            labels = df[spec.columns.person].groupby(person_codes).first()
+            raise DataError(
+                f"dynamics.initial_means: persons {first_few(labels[means.isna()].tolist())} have no available "
+                f"alternative with a value of {attr!r} (only the opt-out), so their mean is undefined."
+            )
         names.append(f"mean:{attr}")
-        vals.append(values[attr].groupby(person_codes).mean().to_numpy(float))
+        vals.append(means.to_numpy(float))
     return names, vals
 
 
@@ -840,16 +865,26 @@ def long_to_wide(frame: pd.DataFrame, spec: Spec | Mapping[str, Any] | str | Pat
     if wide is None:
         raise DataError("long_to_wide needs a spec with a [wide] table.")
     inverse = {v: k for k, v in (wide.choice_labels or {a: a for a in wide.alternatives}).items()}
+    sources = list(dict.fromkeys(a.source for a in spec.attributes.values()))
+    carried = list(spec.covariates.columns) if spec.covariates else []
+    with_avail = wide.available_pattern is not None and cols.available is not None
+    needed = [cols.person, cols.task, cols.alternative, cols.chosen] + sources + carried
+    needed += [cols.available] if with_avail else []
+    absent = [c for c in needed if c not in frame.columns]
+    if absent:
+        raise DataError(f"Missing column(s) {first_few(absent)} in the long table; it has "
+                        f"{first_few(list(frame.columns), 12)}.")
     frame = frame.copy()
     frame[cols.alternative] = frame[cols.alternative].map(_label)
     keys = [cols.person, cols.task]
-    out = frame[keys].drop_duplicates().reset_index(drop=True)
+    out = frame[keys + carried].drop_duplicates(keys).reset_index(drop=True)
     picked = frame.loc[frame[cols.chosen].astype(bool), keys + [cols.alternative]]
     out = out.merge(picked, on=keys, how="left").rename(columns={cols.alternative: wide.choice})
     out[wide.choice] = out[wide.choice].map(inverse)
-    sources = [a.source for a in spec.attributes.values()]
     for alt in wide.alternatives:
-        part = frame.loc[frame[cols.alternative] == alt, keys + sources]
-        part = part.rename(columns={s: wide.pattern.format(attribute=s, alternative=alt) for s in sources})
-        out = out.merge(part, on=keys, how="left")
+        part = frame.loc[frame[cols.alternative] == alt, keys + sources + ([cols.available] if with_avail else [])]
+        names = {s: wide.pattern.format(attribute=s, alternative=alt) for s in sources}
+        if with_avail:
+            names[cols.available] = wide.available_pattern.format(alternative=alt)  # type: ignore[union-attr]
+        out = out.merge(part.rename(columns=names), on=keys, how="left")
     return out

@@ -256,7 +256,13 @@ def simulate_panel(
             entry |= {"coding": "dummy", "base": str(attr.levels[0])}
         spec["attributes"][attr.name] = entry
     if opt_out or constants:
-        reference = opt_out or next(a for a in alts if a not in (constants or {}))
+        free = [a for a in alts if not (constants or {}).get(a, 0.0)]
+        if not opt_out and not free:
+            raise SpecError(
+                f"constants gives every alternative a non-zero constant ({dict(constants or {})}); leave one "
+                "alternative out (its constant is 0: the reference the others are relative to)."
+            )
+        reference = opt_out or free[0]
         spec["constants"] = {"reference": reference}
         if opt_out:
             spec["data"] = {"opt_out": opt_out}

@@ -91,6 +91,23 @@ def _str_list(value: Any, where: str) -> tuple[str, ...]:
     return tuple(value)
 
 
+def _label_list(value: Any, where: str) -> tuple[str, ...]:
+    """A list of alternative labels; numbers are read as text (``1`` -> ``"1"``)."""
+    if not isinstance(value, (list, tuple)):
+        raise SpecError(f"{where} must be a list of alternative labels, e.g. [\"a\", \"b\"], got {value!r}.")
+    return _str_list([str(v) for v in value], where)
+
+
+def _format_check(pattern: str, where: str, **fields: str) -> None:
+    try:
+        pattern.format(**fields)
+    except (KeyError, IndexError, ValueError, AttributeError, TypeError) as err:
+        raise SpecError(
+            f"{where} {pattern!r} is not a valid pattern ({err!r}); it may only use "
+            f"{', '.join('{' + f + '}' for f in fields)} (write {{{{ and }}}} for literal braces)."
+        ) from None
+
+
 def _bool(value: Any, where: str) -> bool:
     if not isinstance(value, bool):
         raise SpecError(f"{where} must be true or false, got {value!r}.")
@@ -330,17 +347,23 @@ class WideSpec:
         pattern = _str(table.get("pattern", "{attribute}_{alternative}"), "wide.pattern")
         if "{attribute}" not in pattern or "{alternative}" not in pattern:
             raise SpecError(f"wide.pattern {pattern!r} must contain {{attribute}} and {{alternative}}.")
+        _format_check(pattern, "wide.pattern", attribute="a", alternative="b")
         labels = table.get("choice_labels")
         if labels is not None:
-            _check_keys(labels, set(labels), "wide.choice_labels")
+            _check_keys(labels, set(labels) if isinstance(labels, Mapping) else set(), "wide.choice_labels")
             labels = {str(k): str(v) for k, v in labels.items()}
         avail = table.get("available_pattern")
+        if avail is not None:
+            avail = _str(avail, "wide.available_pattern")
+            if "{alternative}" not in avail:
+                raise SpecError(f"wide.available_pattern {avail!r} must contain {{alternative}}.")
+            _format_check(avail, "wide.available_pattern", alternative="b")
         return cls(
-            alternatives=_str_list([str(a) for a in table["alternatives"]], "wide.alternatives"),
+            alternatives=_label_list(table["alternatives"], "wide.alternatives"),
             choice=_str(table["choice"], "wide.choice"),
             pattern=pattern,
             choice_labels=labels,
-            available_pattern=None if avail is None else _str(avail, "wide.available_pattern"),
+            available_pattern=avail,
         )
 
 
@@ -359,7 +382,7 @@ class DataOptions:
         alts = table.get("alternatives")
         opt_out = table.get("opt_out")
         return cls(
-            alternatives=None if alts is None else _str_list([str(a) for a in alts], "data.alternatives"),
+            alternatives=None if alts is None else _label_list(alts, "data.alternatives"),
             opt_out=None if opt_out is None else str(opt_out),
             task_scope=_choice(table.get("task_scope", "person"), TASK_SCOPES, "data.task_scope"),
             invalid_tasks=_choice(table.get("invalid_tasks", "error"), INVALID_TASK_POLICIES, "data.invalid_tasks"),
@@ -409,12 +432,14 @@ class SamplingOptions:
     backend: str = "auto"
     store_person_draws: bool = True
     cores: int | None = None
+    mass_matrix: str = "low_rank"
 
     @classmethod
     def from_dict(cls, table: Mapping[str, Any]) -> SamplingOptions:
         _check_keys(
             table,
-            {"chains", "draws", "tune", "target_accept", "seed", "backend", "store_person_draws", "cores"},
+            {"chains", "draws", "tune", "target_accept", "seed", "backend", "store_person_draws", "cores",
+             "mass_matrix"},
             "sampling",
         )
         ta = table.get("target_accept", 0.85)
@@ -430,6 +455,8 @@ class SamplingOptions:
             backend=_choice(table.get("backend", "auto"), BACKENDS, "sampling.backend"),
             store_person_draws=_bool(table.get("store_person_draws", True), "sampling.store_person_draws"),
             cores=None if cores is None else _positive_int(cores, "sampling.cores"),
+            mass_matrix=_choice(table.get("mass_matrix", "low_rank"), ("diagonal", "low_rank"),
+                                "sampling.mass_matrix"),
         )
 
 
@@ -459,7 +486,7 @@ class Spec:
         if "columns" not in table:
             raise SpecError("The spec needs a [columns] table naming person, task, alternative and chosen.")
         attrs_table = table.get("attributes", {})
-        _check_keys(attrs_table, set(attrs_table), "attributes")
+        _check_keys(attrs_table, set(attrs_table) if isinstance(attrs_table, Mapping) else set(), "attributes")
         attributes = {str(n): AttributeSpec.from_dict(str(n), t) for n, t in attrs_table.items()}
         dynamics = DynamicsSpec.from_dict(table.get("dynamics", {}))
         if not attributes and not dynamics.active and "constants" not in table:
@@ -491,14 +518,28 @@ class Spec:
             raise SpecError(f"Spec file {str(path)!r} does not exist.") from None
         except tomllib.TOMLDecodeError as err:
             raise SpecError(f"Spec file {str(path)!r} is not valid TOML: {err}.") from None
+        except (OSError, UnicodeDecodeError) as err:
+            raise SpecError(f"Spec file {str(path)!r} cannot be read: {err}.") from None
         return cls.from_dict(table)
 
     def _check_consistency(self) -> None:
         roles = {self.columns.person, self.columns.task, self.columns.alternative, self.columns.chosen}
         for attr in self.attributes.values():
-            if attr.source in roles:
+            if attr.source in roles | {self.columns.available}:
                 raise SpecError(f"attributes.{attr.name} uses column {attr.source!r}, which is an id/role column.")
         names = set(self.attribute_names_declared)
+        made = [f"{n}_lag" for n in self.dynamics.lag] + [f"{n}_lead" for n in self.dynamics.lead]
+        made += ["lagged_choice"] if self.dynamics.lagged_choice else []
+        for name in made:
+            if name in names:
+                raise SpecError(
+                    f"[attributes] declares {name!r}, the name of a term that [dynamics] creates; rename the "
+                    "attribute (the taste of dynamic terms is set by dynamics.taste)."
+                )
+        if self.wide is not None and self.wide.available_pattern is not None and self.columns.available is None:
+            raise SpecError(
+                "wide.available_pattern is set but [columns] has no available = \"<column>\" to read it into."
+            )
         for kind, items in (("lag", self.dynamics.lag), ("lead", self.dynamics.lead),
                             ("initial_means", self.dynamics.initial_means)):
             for item in items:
@@ -578,6 +619,7 @@ def _toml_value(value: Any) -> str:
         return repr(value)
     if isinstance(value, str):
         escaped = value.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
+        escaped = "".join(f"\\u{ord(c):04x}" if ord(c) < 0x20 or ord(c) == 0x7F else c for c in escaped)
         return f'"{escaped}"'
     if isinstance(value, (list, tuple)):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
@@ -587,7 +629,7 @@ def _toml_value(value: Any) -> str:
 
 
 def _toml_key(key: str) -> str:
-    if key and all(c.isalnum() or c in "_-" for c in key):
+    if key and all((c.isascii() and c.isalnum()) or c in "_-" for c in key):
         return key
     return _toml_value(str(key))
 

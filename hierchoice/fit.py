@@ -1,0 +1,328 @@
+"""Sampling the panel mixed logit with NUTS on the CPU, and the fit result object.
+
+:func:`fit` builds the model (:func:`hierchoice.model.build_model`), samples it
+with the chosen backend (PyMC's own NUTS, nutpie, or numpyro through JAX) and
+returns a :class:`ChoiceFit`: the ArviZ ``InferenceData`` (posterior,
+sample_stats, observed_data, constant_data and, when person draws are kept,
+the task-level log_likelihood) with the panel and the spec it came from.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import logging
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .exceptions import FitError, SpecError
+from .likelihood import difference_data, task_loglik_numpy
+from .model import POPULATION_VARS, ModelLayout, build_model, model_layout
+from .panel import ChoicePanel
+from .spec import Spec, load_spec
+
+__all__ = ["ChoiceFit", "fit", "resolve_backend", "task_log_likelihood", "population_summary"]
+
+log = logging.getLogger("hierchoice")
+
+#: Posterior variables kept in the results (internal standardised variables are dropped).
+REPORTED_VARS = POPULATION_VARS + ("person_taste", "person_wtp")
+
+
+def resolve_backend(name: str) -> str:
+    """Map ``auto`` to the measured default and check that the backend is installed."""
+    if name == "auto":
+        # measured (docs/performance.md): nutpie is fastest here when installed
+        return "nutpie" if importlib.util.find_spec("nutpie") is not None else "pymc"
+    needs = {"nutpie": "nutpie", "numpyro": "numpyro", "pymc": "pymc"}[name]
+    if importlib.util.find_spec(needs) is None:
+        extra = {"nutpie": "pip install nutpie", "numpyro": "pip install numpyro jax"}[name]
+        raise FitError(f"Backend {name!r} is not installed: {extra}.")
+    if name == "numpyro" and importlib.util.find_spec("jax") is None:
+        raise FitError("Backend 'numpyro' needs jax: pip install jax numpyro.")
+    return name
+
+
+@dataclass
+class ChoiceFit:
+    """A fitted panel mixed logit: the posterior, the panel and the spec.
+
+    Attributes
+    ----------
+    idata : arviz.InferenceData
+    panel : ChoicePanel
+    spec : Spec
+    layout : ModelLayout
+    info : dict
+        Backend, wall times, settings and whether the result is approximate.
+    """
+
+    idata: Any
+    panel: ChoicePanel
+    spec: Spec
+    layout: ModelLayout
+    info: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def posterior(self) -> xr.Dataset:
+        return self.idata.posterior
+
+    @property
+    def approximate(self) -> bool:
+        return bool(self.info.get("approximate", False))
+
+    @property
+    def has_person_draws(self) -> bool:
+        return "person_taste" in self.idata.posterior
+
+    def population(self, prob: float = 0.9) -> pd.DataFrame:
+        """Summary of population parameters with equal-tailed intervals (see :func:`population_summary`)."""
+        return population_summary(self, prob=prob)
+
+    def save(self, out: str | Path, *, overwrite: bool = True) -> Path:
+        """Write the results folder atomically (see :mod:`hierchoice.archive`)."""
+        from .archive import save_fit
+
+        return save_fit(self, out, overwrite=overwrite)
+
+    def __repr__(self) -> str:
+        post = self.idata.posterior
+        return (
+            f"ChoiceFit({self.panel.n_persons} persons, {self.panel.n_tasks} tasks, "
+            f"{post.sizes['chain']} chains x {post.sizes['draw']} draws, backend {self.info.get('backend')}"
+            f"{', approximate' if self.approximate else ''})"
+        )
+
+    def _repr_html_(self) -> str:
+        import html
+
+        table = self.population().to_html(float_format=lambda v: f"{v:.4g}")
+        return f"<p>{html.escape(repr(self))}</p>{table}"
+
+
+def _sample_pymc(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
+    import pymc as pm
+
+    with model:
+        return pm.sample(
+            draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed, target_accept=target_accept,
+            var_names=var_names, progressbar=progressbar, compute_convergence_checks=False,
+            return_inferencedata=True, idata_kwargs={"log_likelihood": False},
+        )
+
+
+def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
+    import nutpie
+
+    compiled = nutpie.compile_pymc_model(model, var_names=var_names)
+    # a low-rank update of the diagonal mass matrix follows the correlations between
+    # population parameters (constants vs taste means, correlations vs SDs)
+    return nutpie.sample(
+        compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed, target_accept=target_accept,
+        progress_bar=progressbar, low_rank_modified_mass_matrix=(mass_matrix == "low_rank"),
+    )
+
+
+def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
+    from pymc.sampling.jax import sample_numpyro_nuts
+
+    with model:
+        return sample_numpyro_nuts(
+            draws=draws, tune=tune, chains=chains, random_seed=seed, target_accept=target_accept,
+            var_names=var_names, progressbar=progressbar, chain_method="sequential" if cores == 1 else "parallel",
+            idata_kwargs={"log_likelihood": False},
+        )
+
+
+_SAMPLERS = {"pymc": _sample_pymc, "nutpie": _sample_nutpie, "numpyro": _sample_numpyro}
+
+
+def fit(
+    panel: ChoicePanel,
+    spec: Spec | Mapping[str, Any] | str | Path | None = None,
+    *,
+    draws: int | None = None,
+    tune: int | None = None,
+    chains: int | None = None,
+    seed: int | None = None,
+    backend: str | None = None,
+    target_accept: float | None = None,
+    cores: int | None = None,
+    progressbar: bool = True,
+) -> ChoiceFit:
+    """Sample the panel mixed logit of ``panel`` with NUTS.
+
+    Keyword options override the spec's ``[sampling]`` table; the same seed gives
+    the same posterior.
+
+    Parameters
+    ----------
+    panel : ChoicePanel
+    spec : Spec, mapping or path, optional
+        Defaults to the panel's own spec.
+    draws, tune, chains, seed, backend, target_accept, cores : optional
+        See ``docs/spec.md`` ([sampling]).
+    progressbar : bool, default True
+
+    Returns
+    -------
+    ChoiceFit
+    """
+    spec = panel.spec if spec is None else load_spec(spec)
+    spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
+                              target_accept=target_accept, cores=cores)
+    s = spec.sampling
+    chosen_backend = resolve_backend(s.backend)
+    layout = model_layout(panel, spec)
+    t0 = time.perf_counter()
+    model = build_model(panel, spec)
+    keep = [v for v in REPORTED_VARS if v in model.named_vars]
+    if not s.store_person_draws:
+        keep = [v for v in keep if v not in ("person_taste", "person_wtp")]
+    n_cores = s.cores or min(s.chains, 2)
+    log.info("sampling %s chains x %s draws (%s tune) with %s", s.chains, s.draws, s.tune, chosen_backend)
+    try:
+        idata = _SAMPLERS[chosen_backend](
+            model, draws=s.draws, tune=s.tune, chains=s.chains, cores=n_cores, seed=s.seed,
+            target_accept=s.target_accept, var_names=keep, progressbar=progressbar, mass_matrix=s.mass_matrix,
+        )
+    except (SpecError, FitError):
+        raise
+    except Exception as err:  # the sampler's own failure, reported in our words
+        raise FitError(f"Sampling with backend {chosen_backend!r} failed: {type(err).__name__}: {err}") from err
+    wall = time.perf_counter() - t0
+    idata = _tidy_idata(idata, panel, keep)
+    info = {
+        "backend": chosen_backend,
+        "draws": s.draws, "tune": s.tune, "chains": s.chains, "seed": s.seed, "target_accept": s.target_accept,
+        "wall_seconds": round(wall, 3),
+        "approximate": False,
+        "method": "NUTS",
+    }
+    result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
+    if result.has_person_draws:
+        add_log_likelihood(result)
+    return result
+
+
+def _tidy_idata(idata: Any, panel: ChoicePanel, keep: list[str]) -> Any:
+    """Keep reported variables only; add observed_data and constant_data groups."""
+    import arviz as az
+
+    post = idata.posterior[[v for v in keep if v in idata.posterior]]
+    groups: dict[str, Any] = {"posterior": post}
+    if "sample_stats" in idata.groups():
+        groups["sample_stats"] = idata.sample_stats
+    ds = panel.to_xarray()
+    groups["observed_data"] = xr.Dataset({"chosen": ds["chosen"]})
+    const = ds.drop_vars(["chosen"])
+    groups["constant_data"] = const
+    return az.InferenceData(**groups)
+
+
+def task_log_likelihood(result: ChoiceFit, draws: xr.DataArray | None = None) -> xr.DataArray:
+    """Pointwise log-likelihood of every real task under each posterior draw of the person tastes.
+
+    Returns a DataArray with dims (chain, draw, obs), one ``obs`` per task, with
+    coordinates ``obs_person`` and ``obs_task`` naming the person and task id.
+    """
+    panel = result.panel
+    taste = result.posterior["person_taste"] if draws is None else draws
+    data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen)
+    mask = panel.task_mask
+    p_idx, t_idx = np.nonzero(mask)
+    values = taste.transpose("chain", "draw", "person", "attribute").values
+    n_c, n_d = values.shape[:2]
+    out = np.empty((n_c, n_d, p_idx.size))
+    step = max(1, int(2e7 // max(1, data.D.size)))
+    for c in range(n_c):
+        for d0 in range(0, n_d, step):
+            ll = task_loglik_numpy(data, values[c, d0 : d0 + step])  # (d, P, T)
+            out[c, d0 : d0 + step] = ll[:, p_idx, t_idx]
+    obs_task = np.array([str(v) for v in panel.task_ids[p_idx, t_idx]])
+    return xr.DataArray(
+        out, dims=("chain", "draw", "obs"),
+        coords={"chain": taste["chain"].values, "draw": taste["draw"].values,
+                "obs_person": ("obs", np.asarray(panel.persons, dtype=object)[p_idx]),
+                "obs_task": ("obs", obs_task)},
+        name="chosen",
+    )
+
+
+def add_log_likelihood(result: ChoiceFit) -> None:
+    """Add the task-level log_likelihood group (needs person draws)."""
+    ll = task_log_likelihood(result)
+    ll = ll.assign_coords(obs_person=ll["obs_person"].astype(str))
+    result.idata.add_groups({"log_likelihood": xr.Dataset({"chosen": ll})})
+
+
+def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str, np.ndarray]:
+    return {
+        "implied_mean": sign * np.exp(mu + sd**2 / 2),
+        "implied_median": sign * np.exp(mu),
+        "implied_sd": np.exp(mu + sd**2 / 2) * np.sqrt(np.expm1(sd**2)),
+    }
+
+
+def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
+    """Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals.
+
+    Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]``,
+    ``covariate_effect[<cov>,<attr>]`` and, for each attribute, the implied mean,
+    median and SD of the taste across people (for a lognormal taste
+    :math:`s\\exp(\\eta)`, :math:`\\eta\\sim N(\\mu,\\sigma)`: mean
+    :math:`s\\,e^{\\mu+\\sigma^2/2}`, median :math:`s\\,e^{\\mu}`, SD
+    :math:`e^{\\mu+\\sigma^2/2}\\sqrt{e^{\\sigma^2}-1}`).
+    """
+    if not 0 < prob < 1:
+        raise SpecError(f"prob must be in (0, 1), got {prob!r}.")
+    post = result.posterior
+    layout = result.layout
+    lo_q, hi_q = (1 - prob) / 2, 1 - (1 - prob) / 2
+    rows: list[dict[str, Any]] = []
+
+    def add(name: str, samples: np.ndarray, kind: str) -> None:
+        flat = np.asarray(samples).reshape(-1)
+        rows.append({"parameter": name, "kind": kind, "mean": flat.mean(), "sd": flat.std(ddof=1) if flat.size > 1 else 0.0,
+                     f"q{lo_q:.3g}": np.quantile(flat, lo_q), f"q{hi_q:.3g}": np.quantile(flat, hi_q)})
+
+    mean = post["taste_mean"]
+    sd = post["taste_sd"] if "taste_sd" in post else None
+    for k, name in enumerate(layout.names):
+        m = mean.sel(attribute=name).values
+        add(f"taste_mean[{name}]", m, "population mean" + (" of log-taste" if layout.is_lognormal(k) else ""))
+    if sd is not None:
+        for name in layout.random_names:
+            k = layout.names.index(name)
+            add(f"taste_sd[{name}]", sd.sel(random_attribute=name).values,
+                "population SD" + (" of log-taste" if layout.is_lognormal(k) else ""))
+    if "taste_corr" in post:
+        names = layout.random_names
+        for i in range(len(names)):
+            for j in range(i + 1, len(names)):
+                add(f"taste_corr[{names[i]},{names[j]}]",
+                    post["taste_corr"].isel(random_attribute=i, random_attribute_bis=j).values, "correlation")
+    if "covariate_effect" in post:
+        for c in post["covariate_effect"]["covariate"].values:
+            for a in post["covariate_effect"]["shifted_attribute"].values:
+                add(f"covariate_effect[{c},{a}]", post["covariate_effect"].sel(covariate=c, shifted_attribute=a).values,
+                    "covariate shift of mean")
+    for k, name in enumerate(layout.names):
+        if not layout.is_lognormal(k):
+            continue
+        m = mean.sel(attribute=name).values
+        s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
+        for key, vals in _lognormal_moments(m, s_, layout.sign(k)).items():
+            add(f"{key}[{name}]", vals, f"taste across people ({key.replace('implied_', '')})")
+    return pd.DataFrame(rows).set_index("parameter")
+
+
+def fit_info_json(result: ChoiceFit) -> str:
+    return json.dumps(result.info, indent=2, default=str)

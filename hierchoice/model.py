@@ -1,0 +1,356 @@
+r"""The model builder: a validated panel and a spec become a PyMC panel mixed logit.
+
+For person :math:`n`, task :math:`t`, alternative :math:`j`, utility is
+:math:`U_{ntj} = x_{ntj}\cdot\beta_n + \varepsilon_{ntj}` with i.i.d. Gumbel errors,
+and :math:`\beta_n` is constant across the person's tasks. Each attribute's taste is
+
+* ``fixed``: :math:`\beta_{nk} = \mu_k + \gamma_k^\top z_n` (the same for everyone
+  up to covariates);
+* ``normal``: :math:`\beta_{nk} = \mu_k + \gamma_k^\top z_n + \sigma_k e_{nk}`;
+* ``lognormal``: :math:`\beta_{nk} = s_k \exp(\eta_{nk})` with
+  :math:`\eta_{nk} = \mu_k + \gamma_k^\top z_n + \sigma_k e_{nk}` and sign :math:`s_k`;
+
+with :math:`e_n \sim N(0, I)` (independent tastes) or :math:`e_n \sim N(0, \Omega)`
+where :math:`\Omega` is a correlation matrix with an LKJ prior (correlated tastes;
+Lewandowski, Kurowicka & Joe 2009). In willingness-to-pay space (Train & Weeks
+2005) the price coefficient is :math:`-\lambda_n` with :math:`\lambda_n` lognormal
+and every other coefficient is :math:`\lambda_n w_{nk}`, so the :math:`w_{nk}`
+(willingness to pay) are what the population distribution describes.
+
+Internally every numeric attribute is divided by its standard deviation over the
+available alternatives and every covariate is centred and scaled, so one set of
+weakly-informative priors fits any units; all reported quantities
+(``taste_mean``, ``taste_sd``, ``taste_corr``, ``covariate_effect``,
+``person_taste``, ``person_wtp``) are in the user's units. With covariates,
+``taste_mean`` is the population mean at the sample-average covariate values.
+See ``docs/model.md`` for the priors.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .exceptions import SpecError
+from .likelihood import DifferenceData, difference_data, task_loglik_graph
+from .panel import ChoicePanel, Term
+from .spec import Spec, load_spec
+
+__all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD"]
+
+#: Posterior variables that describe the population (the ones convergence checks must pass on).
+POPULATION_VARS = ("taste_mean", "taste_sd", "taste_corr", "covariate_effect")
+
+#: Prior scales on the internal (standardised) scale; each is multiplied by model.prior_scale.
+PRIOR_SD = {
+    "mean": 2.5,          # Normal(0, 2.5) on a standardised coefficient (common practice for logit slopes)
+    "log_mean": 1.0,      # Normal(0, 1) on the log of a standardised lognormal coefficient
+    "sd": 1.0,            # HalfNormal(1) on the SD of a standardised normal taste
+    "log_sd": 0.5,        # HalfNormal(0.5) on the SD of the log of a lognormal taste
+    "covariate": 1.0,     # Normal(0, 1) per standardised covariate
+    "lkj_eta": 2.0,       # LKJ(2): mild shrinkage of correlations towards 0
+}
+
+_UNIT_KINDS = ("dummy", "effects", "constant", "lagged_choice")
+
+
+@dataclass(frozen=True)
+class ModelLayout:
+    """Where each attribute goes in the model, and the internal scaling.
+
+    ``scale[k]`` divides attribute ``k`` internally (1 for 0/1-coded columns);
+    ``random`` / ``fixed`` index the attributes by taste kind; ``shifted`` the
+    attributes whose means depend on covariates; ``price`` the price attribute
+    in willingness-to-pay space.
+    """
+
+    terms: tuple[Term, ...]
+    scale: np.ndarray
+    random: tuple[int, ...]
+    fixed: tuple[int, ...]
+    shifted: tuple[int, ...]
+    z_mean: np.ndarray
+    z_scale: np.ndarray
+    covariates: tuple[str, ...]
+    correlated: bool
+    centred: bool
+    wtp_space: bool
+    price: int | None
+    constant_centre: np.ndarray | None = None
+
+    @property
+    def names(self) -> list[str]:
+        return [t.name for t in self.terms]
+
+    @property
+    def random_names(self) -> list[str]:
+        return [self.terms[k].name for k in self.random]
+
+    @property
+    def shifted_names(self) -> list[str]:
+        return [self.terms[k].name for k in self.shifted]
+
+    def is_lognormal(self, k: int) -> bool:
+        return self.terms[k].taste == "lognormal"
+
+    def sign(self, k: int) -> float:
+        return -1.0 if self.terms[k].sign == "negative" else 1.0
+
+    def unit_factor(self, k: int) -> float:
+        """Multiply an internal (standardised) linear taste by this to get the user's units.
+
+        In preference space the coefficient of ``x/s`` is ``beta*s``, so the factor is
+        ``1/s``. In WTP space a willingness to pay ``w~`` per standardised unit is
+        ``w~ * s_price / s_k`` in the user's units.
+        """
+        if self.wtp_space and self.price is not None and k != self.price:
+            return float(self.scale[self.price] / self.scale[k])
+        return float(1.0 / self.scale[k])
+
+    def log_shift(self, k: int) -> float:
+        """Add this to an internal log-taste (lognormal) to get the user's units."""
+        return float(np.log(self.unit_factor(k)))
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "attributes": self.names,
+            "scale": self.scale.tolist(),
+            "random": self.random_names,
+            "shifted": self.shifted_names,
+            "covariates": list(self.covariates),
+            "z_mean": self.z_mean.tolist(),
+            "z_scale": self.z_scale.tolist(),
+            "correlated": self.correlated,
+            "centred": self.centred,
+            "wtp_space": self.wtp_space,
+            "price": None if self.price is None else self.names[self.price],
+        }
+
+
+def model_layout(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None) -> ModelLayout:
+    """Decide the internal scaling and the taste layout of ``panel`` under ``spec``."""
+    spec = panel.spec if spec is None else load_spec(spec)
+    terms = panel.terms
+    names = [t.name for t in terms]
+    avail = panel.available & panel.task_mask[:, :, None]
+    scale = np.ones(len(terms))
+    for k, term in enumerate(terms):
+        if term.kind in _UNIT_KINDS:
+            continue
+        values = panel.X[..., k][avail]
+        sd = float(np.std(values)) if values.size else 0.0
+        scale[k] = sd if sd > 0 else 1.0
+    random = tuple(k for k, t in enumerate(terms) if t.taste != "fixed")
+    fixed = tuple(k for k, t in enumerate(terms) if t.taste == "fixed")
+    opts = spec.model
+    if opts.correlated and len(random) < 2:
+        raise SpecError("model.correlated = true needs at least two attributes with a random (normal/lognormal) taste.")
+    price = None
+    if opts.wtp_space:
+        assert opts.price is not None  # checked by the spec
+        if opts.price not in names:
+            raise SpecError(f"model.price = {opts.price!r} is not a model attribute ({', '.join(names)}).")
+        price = names.index(opts.price)
+        if not (terms[price].taste == "lognormal" and terms[price].sign == "negative"):
+            raise SpecError(
+                f"In willingness-to-pay space the price attribute {opts.price!r} needs taste = \"lognormal\" and "
+                "sign = \"negative\" (its coefficient is -lambda with lambda > 0)."
+            )
+    covariates = panel.covariates
+    if covariates:
+        shifts = spec.covariates.shifts if spec.covariates is not None else None
+        if shifts is None:
+            shifted = tuple(range(len(terms)))
+        else:
+            unknown = [s for s in shifts if not any(t.name == s or t.source == s for t in terms)]
+            if unknown:
+                raise SpecError(f"covariates.shifts names {unknown}, not model attributes ({', '.join(names)}).")
+            shifted = tuple(k for k, t in enumerate(terms) if t.name in shifts or t.source in shifts)
+        z_mean = panel.Z.mean(axis=0)
+        z_scale = panel.Z.std(axis=0)
+        z_scale[z_scale == 0] = 1.0
+    else:
+        shifted = ()
+        z_mean = np.zeros(0)
+        z_scale = np.ones(0)
+    return ModelLayout(
+        terms=tuple(terms), scale=scale, random=random, fixed=fixed, shifted=shifted, z_mean=z_mean,
+        z_scale=z_scale, covariates=tuple(covariates), correlated=opts.correlated,
+        centred=opts.parameterization == "centred", wtp_space=opts.wtp_space, price=price,
+        constant_centre=None if opts.wtp_space else _constant_centre(panel, terms, scale, spec),
+    )
+
+
+def _constant_centre(panel: ChoicePanel, terms: tuple[Term, ...], scale: np.ndarray, spec: Spec) -> np.ndarray | None:
+    r"""Mean attribute contrast of each alternative against the reference, ``c[a, k]``.
+
+    The free parameter of a constant is :math:`\tilde a = a + \sum_k \bar\beta_k c_{ak}`,
+    the utility contrast at the alternative's mean attribute levels, where
+    :math:`\bar\beta_k` is the population mean coefficient (:math:`s_k e^{\mu_k}` for a
+    lognormal taste). It is an exact change of variables of the population
+    parameters: it removes most of the posterior correlation between a constant and
+    the taste means when, as with an opt-out, the alternatives' attribute levels sit
+    far from the reference's.
+    """
+    const = [k for k, t in enumerate(terms) if t.kind == "constant"]
+    if not const or spec.constants is None:
+        return None
+    avail = panel.available & panel.task_mask[:, :, None]
+    ref = panel.alternatives.index(spec.constants.reference)
+    centre = np.zeros((len(terms), len(terms)))
+    slopes = [k for k, t in enumerate(terms) if t.kind != "constant"]
+
+    def mean_of(j: int, k: int) -> float:
+        v = panel.X[:, :, j, k][avail[:, :, j]] / scale[k]
+        return float(v.mean()) if v.size else 0.0
+
+    for a in const:
+        j = panel.alternatives.index(terms[a].source)
+        for k in slopes:
+            centre[a, k] = mean_of(j, k) - mean_of(ref, k)
+    return centre if np.any(centre) else None
+
+
+def _centred_constants(mu_free, layout: ModelLayout):  # type: ignore[no-untyped-def]
+    """The constants' population means from their free (centred) parameters."""
+    import pytensor.tensor as pt
+
+    assert layout.constant_centre is not None
+    n_k = len(layout.terms)
+    mean_coef = pt.stack([layout.sign(k) * pt.exp(mu_free[k]) if layout.is_lognormal(k) else mu_free[k]
+                          for k in range(n_k)])
+    return mu_free - pt.dot(pt.as_tensor_variable(layout.constant_centre), mean_coef)
+
+
+def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> DifferenceData:
+    return difference_data(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
+
+
+def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None):  # type: ignore[no-untyped-def]
+    r"""Build the panel mixed logit of ``panel`` under ``spec`` as a :class:`pymc.Model`.
+
+    A pure function: it reads the panel and the spec and samples nothing.
+
+    Parameters
+    ----------
+    panel : ChoicePanel
+    spec : Spec, mapping or path, optional
+        Defaults to the spec the panel was validated with.
+
+    Returns
+    -------
+    pymc.Model
+        With dims ``person``, ``attribute``, ``random_attribute`` (and
+        ``random_attribute_bis``, ``covariate``, ``shifted_attribute``) and
+        deterministics in the user's units: ``taste_mean``, ``taste_sd``,
+        ``taste_corr`` (correlated), ``covariate_effect`` (covariates),
+        ``person_taste``, ``person_wtp`` (WTP space). The log-likelihood is the
+        potential ``panel_loglik``:
+
+        .. math:: \sum_n \sum_t \log P_{nt}(\beta_n).
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    spec = panel.spec if spec is None else load_spec(spec)
+    layout = model_layout(panel, spec)
+    data = _difference_data(panel, layout)
+    names = layout.names
+    rnd = list(layout.random)
+    n_p, n_k, n_r = panel.n_persons, len(names), len(rnd)
+    ps = spec.model.prior_scale
+    coords: dict[str, Any] = {
+        "person": list(panel.persons),
+        "attribute": names,
+        "random_attribute": layout.random_names,
+    }
+    if layout.correlated:
+        coords["random_attribute_bis"] = layout.random_names
+    if layout.shifted:
+        coords["covariate"] = list(layout.covariates)
+        coords["shifted_attribute"] = layout.shifted_names
+
+    mean_sd = np.array([PRIOR_SD["log_mean"] if layout.is_lognormal(k) else PRIOR_SD["mean"] for k in range(n_k)])
+    sd_sd = np.array([PRIOR_SD["log_sd"] if layout.is_lognormal(k) else PRIOR_SD["sd"] for k in rnd])
+
+    with pm.Model(coords=coords) as model:
+        mu_free = pm.Normal("mu_std", 0.0, mean_sd * ps, dims="attribute")
+        mu = _centred_constants(mu_free, layout) if layout.constant_centre is not None else mu_free
+        theta: list[Any] = [mu[k] for k in range(n_k)]  # per-attribute latent (scalar or (person,))
+
+        if layout.shifted:
+            gamma = pm.Normal("gamma_std", 0.0, PRIOR_SD["covariate"] * ps, dims=("covariate", "shifted_attribute"))
+            z_std = pt.constant((panel.Z - layout.z_mean) / layout.z_scale)
+            shift = pt.dot(z_std, gamma)  # (person, shifted)
+            for i, k in enumerate(layout.shifted):
+                theta[k] = theta[k] + shift[:, i]
+
+        if rnd:
+            if layout.correlated:
+                chol, corr, _ = pm.LKJCholeskyCov(
+                    "chol_std", n=n_r, eta=PRIOR_SD["lkj_eta"],
+                    sd_dist=pm.HalfNormal.dist(sigma=sd_sd * ps, shape=n_r), compute_corr=True,
+                )
+                sd = pm.Deterministic("sd_std", pt.sqrt(pt.diag(chol @ chol.T)), dims="random_attribute")
+            else:
+                sd = pm.HalfNormal("sd_std", sigma=sd_sd * ps, dims="random_attribute")
+            mean_r = pt.stack([theta[k] if getattr(theta[k], "ndim", 0) == 1
+                               else pt.repeat(pt.shape_padleft(theta[k]), n_p) for k in rnd], axis=1) \
+                if layout.shifted else None
+            if layout.centred:
+                loc = mean_r if mean_r is not None else mu[rnd]
+                if layout.correlated:
+                    eta = pm.MvNormal("eta_std", mu=loc, chol=chol, dims=("person", "random_attribute"))
+                else:
+                    eta = pm.Normal("eta_std", mu=loc, sigma=sd, dims=("person", "random_attribute"))
+                for i, k in enumerate(rnd):
+                    theta[k] = eta[:, i]
+            else:
+                e = pm.Normal("e_std", 0.0, 1.0, dims=("person", "random_attribute"))
+                dev = pt.dot(e, chol.T) if layout.correlated else e * sd
+                for i, k in enumerate(rnd):
+                    theta[k] = theta[k] + dev[:, i]
+
+        # coefficients of the standardised attributes
+        coef: list[Any] = []
+        for k in range(n_k):
+            coef.append(layout.sign(k) * pt.exp(theta[k]) if layout.is_lognormal(k) else theta[k])
+        if layout.wtp_space:
+            assert layout.price is not None
+            lam = -coef[layout.price]  # lambda > 0
+            beta = [coef[k] if k == layout.price else lam * coef[k] for k in range(n_k)]
+        else:
+            beta = coef
+
+        loglik = task_loglik_graph(data, beta)
+        pm.Potential("panel_loglik", loglik.sum())
+
+        # --- reported quantities, in the user's units
+        unit = np.array([layout.unit_factor(k) for k in range(n_k)])
+        logshift = np.array([layout.log_shift(k) for k in range(n_k)])
+        lognormal = np.array([layout.is_lognormal(k) for k in range(n_k)])
+        pm.Deterministic("taste_mean", pt.switch(lognormal, mu + logshift, mu * unit), dims="attribute")
+        if rnd:
+            r_unit = np.where(lognormal[rnd], 1.0, unit[rnd])
+            pm.Deterministic("taste_sd", sd * r_unit, dims="random_attribute")
+            if layout.correlated:
+                pm.Deterministic("taste_corr", corr, dims=("random_attribute", "random_attribute_bis"))
+        if layout.shifted:
+            s_idx = list(layout.shifted)
+            g_unit = np.where(lognormal[s_idx], 1.0, unit[s_idx])[None, :] / layout.z_scale[:, None]
+            pm.Deterministic("covariate_effect", gamma * g_unit, dims=("covariate", "shifted_attribute"))
+        cols = [b if getattr(b, "ndim", 0) == 1 else pt.repeat(pt.shape_padleft(b), n_p) for b in beta]
+        beta_user = pt.stack(cols, axis=1) / layout.scale[None, :]
+        pm.Deterministic("person_taste", beta_user, dims=("person", "attribute"))
+        if layout.wtp_space:
+            wtp_cols = [k for k in range(n_k) if k != layout.price]
+            coords_w = [names[k] for k in wtp_cols]
+            model.add_coord("wtp_attribute", coords_w)
+            w = pt.stack([coef[k] if getattr(coef[k], "ndim", 0) == 1 else pt.repeat(pt.shape_padleft(coef[k]), n_p)
+                          for k in wtp_cols], axis=1)
+            pm.Deterministic("person_wtp", w * unit[wtp_cols][None, :], dims=("person", "wtp_attribute"))
+    return model
