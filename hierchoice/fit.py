@@ -126,7 +126,7 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
     # population parameters (constants vs taste means, correlations vs SDs)
     return nutpie.sample(
         compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed, target_accept=target_accept,
-        progress_bar=progressbar, low_rank_modified_mass_matrix=(mass_matrix == "low_rank"),
+        progress_bar=progressbar, low_rank_modified_mass_matrix=(mass_matrix == "low_rank"), save_warmup=False,
     )
 
 

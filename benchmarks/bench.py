@@ -1,0 +1,324 @@
+"""hierchoice benchmarks: sampling efficiency and the cost of one log-posterior gradient.
+
+Usage::
+
+    python benchmarks/bench.py                 # B1: 1000 persons x 10 tasks x 3 alternatives x 4 normal tastes
+    python benchmarks/bench.py --b3            # also B3: 10,000 x 12 x 4 x 5 correlated tastes (long)
+    python benchmarks/bench.py --tiny          # a tiny size so CI runs the script without measuring anything
+    python benchmarks/bench.py --scaling       # cost of one gradient at three sizes of persons, tasks, attributes
+
+Each sampling configuration runs in its own subprocess so that its peak memory (ru_maxrss) is its own. Every figure
+is measured in the same run as its baseline (this machine is shared and noisy): the ratios are what to read.
+Figures go to stdout and to ``benchmarks/results/<size>.json``.
+
+Configurations
+--------------
+naive
+    What a user would write by hand: a per-row gather ``beta[person_index]``, ``pm.Categorical(logit_p=...)``,
+    PyMC's default sampler; same priors on the same standardised attributes, same draws.
+default
+    ``hierchoice.fit`` with its defaults (nutpie, low-rank mass matrix, difference-form likelihood).
+pymc
+    ``hierchoice.fit`` with PyMC's own NUTS.
+
+Kernels (one log-posterior + gradient of the B1 model, independent normal tastes, non-centred)
+-------------------------------------------------------------------------------------------------
+numpy_floor   numpy's vectorised exp/log on the difference form, value and exact gradient (the practical floor)
+numba_fused   one fused pass in numba with scalar exp (a second reference)
+graph_c       hierchoice's PyTensor graph, C backend
+graph_numba   hierchoice's PyTensor graph as nutpie compiles it (numba)
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+SIZES = {
+    "tiny": dict(n_persons=30, n_tasks=4, n_alternatives=3, n_attributes=2, correlated=False, draws=30, tune=30,
+                 chains=2),
+    "B1": dict(n_persons=1000, n_tasks=10, n_alternatives=3, n_attributes=4, correlated=False, draws=500, tune=500,
+               chains=2),
+    "B3": dict(n_persons=10_000, n_tasks=12, n_alternatives=4, n_attributes=5, correlated=True, draws=1000,
+               tune=1000, chains=4),
+}
+
+
+def _panel(size: dict):
+    import hierchoice as hc
+
+    sim = hc.benchmark_scenario(size["n_persons"], size["n_tasks"], size["n_alternatives"], size["n_attributes"],
+                                correlated=size["correlated"], seed=1)
+    return sim, hc.ChoicePanel.from_frame(sim.data, sim.spec)
+
+
+def _min_ess(idata, names) -> float:
+    import arviz as az
+
+    ess = az.ess(idata, var_names=[n for n in names if n in idata.posterior], method="bulk")
+    return float(min(float(ess[v].min()) for v in ess.data_vars))
+
+
+def _naive_model(panel):
+    """The per-row gather model with pm.Categorical, on the same standardised attributes and priors."""
+    import pymc as pm
+
+    from hierchoice.model import PRIOR_SD, model_layout
+
+    layout = model_layout(panel)
+    p_idx, t_idx = np.nonzero(panel.task_mask)
+    X = panel.X[p_idx, t_idx] / layout.scale  # (rows, J, K)
+    y = panel.chosen[p_idx, t_idx]
+    K = X.shape[-1]
+    with pm.Model(coords={"attribute": list(panel.attributes)}) as model:
+        mu = pm.Normal("taste_mean", 0, PRIOR_SD["mean"], dims="attribute")
+        sd = pm.HalfNormal("taste_sd", PRIOR_SD["sd"], dims="attribute")
+        e = pm.Normal("e", 0, 1, shape=(panel.n_persons, K))
+        beta = mu + sd * e
+        util = (X * beta[p_idx][:, None, :]).sum(-1)
+        pm.Categorical("y", logit_p=util, observed=y)
+    return model
+
+
+def run_one(config: str, size_name: str) -> dict:
+    """One sampling configuration; returns its figures (run in a subprocess)."""
+    import pymc as pm
+
+    import hierchoice as hc
+
+    size = SIZES[size_name]
+    sim, panel = _panel(size)
+    t0 = time.perf_counter()
+    if config == "naive":
+        model = _naive_model(panel)
+        with model:
+            idata = pm.sample(draws=size["draws"], tune=size["tune"], chains=size["chains"], cores=2, random_seed=3,
+                              progressbar=False, compute_convergence_checks=False)
+        names = ["taste_mean", "taste_sd"]
+        grads = int(idata.sample_stats["n_steps"].sum())
+    else:
+        backend = "pymc" if config == "pymc" else "auto"
+        spec = hc.Spec.from_dict(panel.spec.to_dict() | {"sampling": {"store_person_draws": False}})
+        result = hc.fit(panel, spec, draws=size["draws"], tune=size["tune"], chains=size["chains"], seed=3,
+                        backend=backend, progressbar=False)
+        idata = result.idata
+        names = ["taste_mean", "taste_sd", "taste_corr"]
+        stats = idata.sample_stats
+        grads = int(stats["n_steps"].sum()) if "n_steps" in stats else -1
+    wall = time.perf_counter() - t0
+    ess = _min_ess(idata, names)
+    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return {"config": config, "wall_s": round(wall, 2), "min_bulk_ess": round(ess, 1),
+            "ess_per_s": round(ess / wall, 3), "peak_mb": round(peak_mb, 1), "gradient_evals_sampling": grads}
+
+
+# ---------------------------------------------------------------- kernels
+
+
+def numpy_floor_kernel(D, mask, n_other, mu, log_sd, e):
+    """Log-posterior and gradient of the non-centred normal-taste model, numpy vectorised (reference)."""
+    sd = np.exp(log_sd)
+    beta = mu + sd * e  # (P, K)
+    n_k = D.shape[0]
+    delta = D[0] * beta[:, 0:1]
+    for k in range(1, n_k):
+        delta += D[k] * beta[:, k : k + 1]
+    P, R = mask.shape
+    d3 = delta.reshape(P, -1, n_other)  # (person, task, other alternative)
+    m = np.maximum(d3.max(-1), 0.0)
+    ex = np.exp(d3 - m[..., None]) * mask.reshape(P, -1, n_other)
+    tot = np.exp(-m) + ex.sum(-1)
+    ll = -(m + np.log(tot)).sum()
+    q = (ex / tot[..., None]).reshape(P, R)  # d ll / d delta = -q
+    g_beta = np.empty_like(beta)
+    for k in range(n_k):
+        g_beta[:, k] = -(q * D[k]).sum(1)
+    # priors: mu ~ N(0, 2.5), sd ~ HalfNormal(1) with log transform (+ Jacobian), e ~ N(0, 1)
+    lp = ll - 0.5 * (mu**2).sum() / 2.5**2 - 0.5 * (sd**2).sum() + log_sd.sum() - 0.5 * (e**2).sum()
+    g_mu = g_beta.sum(0) - mu / 2.5**2
+    g_logsd = (g_beta * e).sum(0) * sd - sd**2 + 1.0
+    g_e = g_beta * sd - e
+    return lp, g_mu, g_logsd, g_e
+
+
+def _numba_fused():
+    import numba
+
+    @numba.njit(fastmath=False, cache=False)
+    def kernel(D, mask, n_other, mu, log_sd, e, g_e):
+        n_k, P, R = D.shape
+        sd = np.exp(log_sd)
+        lp = 0.0
+        g_mu = np.zeros(n_k)
+        g_logsd = np.zeros(n_k)
+        beta = np.empty(n_k)
+        gb = np.empty(n_k)
+        dl = np.empty(n_other)
+        for p in range(P):
+            for k in range(n_k):
+                beta[k] = mu[k] + sd[k] * e[p, k]
+                gb[k] = 0.0
+            for t0 in range(0, R, n_other):
+                m = 0.0
+                for j in range(n_other):
+                    v = 0.0
+                    for k in range(n_k):
+                        v += D[k, p, t0 + j] * beta[k]
+                    dl[j] = v
+                    if v > m:
+                        m = v
+                tot = np.exp(-m)
+                for j in range(n_other):
+                    dl[j] = np.exp(dl[j] - m) * mask[p, t0 + j]
+                    tot += dl[j]
+                lp -= m + np.log(tot)
+                for j in range(n_other):
+                    w = dl[j] / tot
+                    for k in range(n_k):
+                        gb[k] -= w * D[k, p, t0 + j]
+            for k in range(n_k):
+                g_mu[k] += gb[k]
+                g_logsd[k] += gb[k] * e[p, k] * sd[k]
+                g_e[p, k] = gb[k] * sd[k] - e[p, k]
+                lp -= 0.5 * e[p, k] * e[p, k]
+        for k in range(n_k):
+            lp += -0.5 * mu[k] * mu[k] / 6.25 - 0.5 * sd[k] * sd[k] + log_sd[k]
+            g_mu[k] -= mu[k] / 6.25
+            g_logsd[k] += 1.0 - sd[k] * sd[k]
+        return lp, g_mu, g_logsd
+
+    return kernel
+
+
+def _time(f, n=200) -> float:
+    f()
+    best = np.inf
+    for _ in range(3):
+        t = time.perf_counter()
+        for _ in range(n):
+            f()
+        best = min(best, (time.perf_counter() - t) / n)
+    return best * 1e3
+
+
+def kernels(size_name: str) -> dict:
+    """Milliseconds per log-posterior + gradient at ``size_name`` for the reference kernels and the graph."""
+    import hierchoice as hc
+    from hierchoice.likelihood import difference_data
+    from hierchoice.model import build_model, model_layout
+
+    size = SIZES[size_name]
+    sim, panel = _panel(size)
+    layout = model_layout(panel)
+    data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
+    rng = np.random.default_rng(0)
+    K = data.D.shape[0]
+    mu, log_sd = rng.normal(0, 0.5, K), rng.normal(-0.5, 0.2, K)
+    e = rng.normal(size=(panel.n_persons, K))
+    out: dict[str, float] = {}
+    out["numpy_floor_ms"] = _time(lambda: numpy_floor_kernel(data.D, data.mask, data.n_others, mu, log_sd, e))
+    fused = _numba_fused()
+    g_e = np.empty_like(e)
+    out["numba_fused_ms"] = _time(lambda: fused(data.D, data.mask, data.n_others, mu, log_sd, e, g_e))
+
+    model = build_model(panel)
+    f = model.logp_dlogp_function(ravel_inputs=True)
+    f.set_extra_values({})
+    x = np.concatenate([mu, log_sd, e.ravel()])
+    # check the reference against the graph before timing anything
+    lp_graph, grad_graph = f(x)
+    lp_ref, g_mu, g_logsd, g_e_ref = numpy_floor_kernel(data.D, data.mask, data.n_others, mu, log_sd, e)
+    ref_grad = np.concatenate([g_mu, g_logsd, g_e_ref.ravel()])
+    const = lp_graph - lp_ref  # normalising constants of the priors differ; gradients must agree
+    out["graph_vs_floor_max_grad_diff"] = float(np.max(np.abs(grad_graph - ref_grad)))
+    out["graph_minus_floor_logp_constant"] = float(const)
+    out["graph_c_ms"] = _time(lambda: f(x))
+    try:
+        import nutpie
+
+        compiled = nutpie.compile_pymc_model(model)
+        point = np.asarray(x, dtype=np.float64)
+        n = 300
+        t = time.perf_counter()
+        compiled.benchmark_logp(point, n, 1)
+        out["graph_numba_ms"] = (time.perf_counter() - t) / n * 1e3
+    except Exception as err:  # nutpie missing or failing: say so, do not hide it
+        out["graph_numba_error"] = f"{type(err).__name__}: {err}"
+    out["graph_c_over_floor"] = out["graph_c_ms"] / out["numpy_floor_ms"]
+    if "graph_numba_ms" in out:
+        out["graph_numba_over_floor"] = out["graph_numba_ms"] / out["numpy_floor_ms"]
+    return {k: (round(v, 4) if isinstance(v, float) else v) for k, v in out.items()}
+
+
+def scaling() -> list[dict]:
+    """Cost of one gradient (C backend) as persons, tasks and attributes grow."""
+    from hierchoice.model import build_model
+
+    rows = []
+    base = dict(n_persons=500, n_tasks=10, n_alternatives=3, n_attributes=4, correlated=False)
+    for key, values in (("n_persons", [250, 500, 1000]), ("n_tasks", [5, 10, 20]), ("n_attributes", [2, 4, 8])):
+        for v in values:
+            size = base | {key: v}
+            _, panel = _panel(size)
+            model = build_model(panel)
+            f = model.logp_dlogp_function(ravel_inputs=True)
+            f.set_extra_values({})
+            x = np.zeros(f.size) + 0.01
+            rows.append({"vary": key, "value": v, "ms_per_gradient": round(_time(lambda: f(x), 100), 4)})
+    return rows
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--tiny", action="store_true", help="tiny size: exercise the script, measure nothing")
+    parser.add_argument("--b3", action="store_true", help="also run B3 (long)")
+    parser.add_argument("--scaling", action="store_true", help="gradient cost at three sizes per dimension")
+    parser.add_argument("--one", nargs=2, metavar=("CONFIG", "SIZE"), help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.one:
+        print(json.dumps(run_one(*args.one)))
+        return
+    sizes = ["tiny"] if args.tiny else ["B1"] + (["B3"] if args.b3 else [])
+    out_dir = Path(__file__).parent / "results"
+    out_dir.mkdir(exist_ok=True)
+    env = os.environ | {"PYTHONWARNINGS": "ignore"}
+    for size in sizes:
+        configs = ["default"] if size == "B3" else ["naive", "default", "pymc"]
+        figures: dict = {"size": size, "shape": SIZES[size], "machine": f"{os.cpu_count()} cores", "runs": []}
+        for config in configs:
+            proc = subprocess.run([sys.executable, __file__, "--one", config, size], capture_output=True, text=True,
+                                  env=env)
+            if proc.returncode != 0:
+                raise SystemExit(f"{config} on {size} failed:\n{proc.stderr[-3000:]}")
+            row = json.loads(proc.stdout.strip().splitlines()[-1])
+            figures["runs"].append(row)
+            print(f"{size:5} {config:8} wall {row['wall_s']:8.1f} s  min bulk ESS {row['min_bulk_ess']:8.1f}  "
+                  f"ESS/s {row['ess_per_s']:8.2f}  peak {row['peak_mb']:8.0f} MB", flush=True)
+        runs = {r["config"]: r for r in figures["runs"]}
+        if "naive" in runs:
+            for config in ("default", "pymc"):
+                ratio = runs[config]["ess_per_s"] / max(runs["naive"]["ess_per_s"], 1e-9)
+                figures[f"{config}_over_naive_ess_per_s"] = round(ratio, 2)
+                print(f"{size:5} ESS/s ratio {config} / naive: {ratio:.2f}")
+        if size != "B3":
+            figures["kernels"] = kernels(size)
+            for k, v in figures["kernels"].items():
+                print(f"{size:5} kernel {k}: {v}")
+        if args.scaling and size == "B1":
+            figures["scaling"] = scaling()
+            for row in figures["scaling"]:
+                print(f"scaling {row['vary']}={row['value']}: {row['ms_per_gradient']} ms per gradient")
+        (out_dir / f"{size}.json").write_text(json.dumps(figures, indent=2))
+        print(f"wrote {out_dir / (size + '.json')}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,116 @@
+"""Fitting, the results archive, and the fit command (small invented panels, few draws)."""
+
+import os
+
+import numpy as np
+import pytest
+
+import hierchoice as hc
+from hierchoice.archive import load_fit, save_fit
+from hierchoice.cli import main
+
+
+@pytest.fixture(scope="module")
+def small():
+    sim = hc.ferry_scenario(40, n_tasks=6, seed=4, correlated=False)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    result = hc.fit(panel, draws=60, tune=60, chains=2, seed=5, progressbar=False)
+    return sim, panel, result
+
+
+def test_result_has_the_promised_groups_and_names(small):
+    _, panel, result = small
+    post = result.posterior
+    assert set(result.idata.groups()) >= {"posterior", "sample_stats", "observed_data", "constant_data",
+                                          "log_likelihood"}
+    assert list(post["taste_mean"]["attribute"].values) == list(panel.attributes)
+    assert post["person_taste"].dims == ("chain", "draw", "person", "attribute")
+    assert post.sizes["chain"] == 2 and post.sizes["draw"] == 60
+    # internal standardised variables are not reported
+    assert not any(name.endswith("_std") for name in post.data_vars)
+    # the log-likelihood has one entry per real task
+    assert result.idata.log_likelihood["chosen"].sizes["obs"] == panel.n_tasks
+    fare = panel.attributes.index("fare")
+    assert np.all(post["person_taste"].values[..., fare] < 0)
+
+
+def test_log_likelihood_matches_person_tastes(small):
+    _, panel, result = small
+    ll = result.idata.log_likelihood["chosen"].isel(chain=0, draw=3).values
+    beta = result.posterior["person_taste"].isel(chain=0, draw=3).values
+    from hierchoice.likelihood import choice_probabilities
+
+    p = choice_probabilities(panel.X, panel.available, beta)
+    pp, tt = np.nonzero(panel.task_mask)
+    np.testing.assert_allclose(ll, np.log(p[pp, tt, panel.chosen[pp, tt]]), rtol=1e-10)
+
+
+def test_archive_round_trip(small, tmp_path):
+    _, panel, result = small
+    out = save_fit(result, tmp_path / "fit")
+    assert sorted(os.listdir(out)) == ["fit.log", "population.csv", "posterior.nc", "spec.toml"]
+    again = load_fit(out)
+    np.testing.assert_array_equal(again.posterior["person_taste"].values, result.posterior["person_taste"].values)
+    np.testing.assert_array_equal(again.panel.X, panel.X)
+    np.testing.assert_array_equal(again.panel.chosen, panel.chosen)
+    assert again.panel.persons == panel.persons
+    assert again.panel.attributes == panel.attributes
+    assert again.spec == result.spec
+    assert again.population().equals(result.population())
+
+
+def test_interrupted_write_keeps_the_earlier_folder(small, tmp_path, monkeypatch):
+    _, _, result = small
+    out = save_fit(result, tmp_path / "fit")
+    before = (out / "population.csv").read_text()
+    import hierchoice.archive as archive
+
+    def boom(*args, **kwargs):
+        raise RuntimeError("disk full")
+
+    monkeypatch.setattr(archive, "population_summary", boom)
+    with pytest.raises(RuntimeError):
+        save_fit(result, out)
+    assert (out / "population.csv").read_text() == before
+    assert [p.name for p in tmp_path.iterdir()] == ["fit"]  # no half-written sibling left behind
+
+
+def test_load_fit_on_a_foreign_folder(tmp_path):
+    with pytest.raises(hc.ArchiveError, match="posterior.nc"):
+        load_fit(tmp_path)
+
+
+def test_same_seed_same_posterior(small):
+    _, panel, result = small
+    again = hc.fit(panel, draws=60, tune=60, chains=2, seed=5, progressbar=False)
+    np.testing.assert_array_equal(again.posterior["taste_mean"].values, result.posterior["taste_mean"].values)
+
+
+def test_without_person_draws(small):
+    _, panel, _ = small
+    spec = hc.Spec.from_dict(panel.spec.to_dict() | {"sampling": {"store_person_draws": False}})
+    result = hc.fit(panel, spec, draws=30, tune=30, chains=1, seed=1, progressbar=False)
+    assert "person_taste" not in result.posterior and "log_likelihood" not in result.idata.groups()
+    assert "taste_mean" in result.posterior
+
+
+def test_fit_command_writes_a_results_folder(tmp_path, capsys):
+    from hierchoice.demo import write_demo_data
+
+    data, spec = write_demo_data(tmp_path, persons=25, seed=3)
+    code = main(["fit", str(data), "--spec", str(spec), "--out", str(tmp_path / "res"), "--draws", "30",
+                 "--tune", "30", "--chains", "1", "--quiet"])
+    assert code == 0
+    assert (tmp_path / "res" / "posterior.nc").exists()
+    assert "taste_mean[fare]" in capsys.readouterr().out
+
+
+def test_fit_command_bad_backend_option_is_a_clean_error(tmp_path, capsys):
+    from hierchoice.demo import write_demo_data
+
+    data, spec = write_demo_data(tmp_path, persons=10, seed=3)
+    text = spec.read_text().replace("draws = 500", "draws = -1")
+    spec.write_text(text)
+    code = main(["fit", str(data), "--spec", str(spec), "--out", str(tmp_path / "res")])
+    assert code == 2
+    assert "sampling.draws" in capsys.readouterr().err

@@ -1,0 +1,69 @@
+"""Parameter recovery on invented panels (slow: real NUTS fits of a few hundred persons)."""
+
+import numpy as np
+import pytest
+
+import hierchoice as hc
+
+pytestmark = pytest.mark.slow
+
+
+def _coverage(result, truth, prob=0.9):
+    """(covered, total) of 90 % equal-tailed intervals of taste_mean / taste_sd / taste_corr over the truth."""
+    post = result.posterior
+    lo, hi = (1 - prob) / 2, 1 - (1 - prob) / 2
+    hits, total, missed = 0, 0, []
+    checks = [("taste_mean", "attribute", truth["taste_mean"]), ("taste_sd", "random_attribute", truth["taste_sd"])]
+    for var, dim, values in checks:
+        for name, true in values.items():
+            s = post[var].sel({dim: name}).values.ravel()
+            ok = np.quantile(s, lo) <= true <= np.quantile(s, hi)
+            hits += ok
+            total += 1
+            if not ok:
+                missed.append((var, name, true, np.quantile(s, [lo, hi])))
+    if "taste_corr" in post:
+        names = list(truth["taste_corr"].index)
+        for i in range(len(names)):
+            for j in range(i + 1, len(names)):
+                s = post["taste_corr"].sel(random_attribute=names[i], random_attribute_bis=names[j]).values.ravel()
+                true = truth["taste_corr"].iloc[i, j]
+                ok = np.quantile(s, lo) <= true <= np.quantile(s, hi)
+                hits += ok
+                total += 1
+                if not ok:
+                    missed.append(("taste_corr", (names[i], names[j]), true, np.quantile(s, [lo, hi])))
+    return hits, total, missed
+
+
+def _person_correlation(result, truth):
+    est = result.posterior["person_taste"].mean(("chain", "draw")).to_pandas()
+    true = truth["person_taste"].loc[est.index, est.columns]
+    return {c: np.corrcoef(est[c], true[c])[0, 1] for c in truth["taste_sd"].index}
+
+
+@pytest.mark.parametrize("case", ["normal", "lognormal", "correlated"])
+def test_recovery(case):
+    if case == "normal":
+        sim = hc.benchmark_scenario(300, 10, 3, 3, seed=21)
+    elif case == "lognormal":
+        sim = hc.simulate_panel(
+            [hc.SimAttribute("price", levels=[1.0, 2.0, 3.0, 4.0], taste="lognormal", mean=-0.3, sd=0.5,
+                             sign="negative"),
+             hc.SimAttribute("quality", levels=[0.0, 1.0, 2.0], taste="normal", mean=0.8, sd=0.6)],
+            n_persons=300, n_tasks=12, alternatives=("a", "b", "c"), seed=22,
+        )
+    else:
+        sim = hc.simulate_panel(
+            [hc.SimAttribute(f"x{k}", levels=[-1.0, -0.5, 0.0, 0.5, 1.0], taste="normal", mean=m, sd=s)
+             for k, (m, s) in enumerate([(1.0, 1.0), (-0.8, 0.8), (0.5, 0.7)])],
+            n_persons=400, n_tasks=12, alternatives=("a", "b", "c"), correlation=0.6, seed=23,
+        )
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    result = hc.fit(panel, draws=500, tune=500, chains=2, seed=3, progressbar=False)
+    hits, total, missed = _coverage(result, sim.truth)
+    # 90 % intervals: with a handful of parameters at most one miss is expected by chance
+    assert total - hits <= 1, missed
+    for name, r in _person_correlation(result, sim.truth).items():
+        # each person answers ~10 tasks, so person tastes are shrunk but must track the truth
+        assert r > 0.5, (name, r)
