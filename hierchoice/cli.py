@@ -33,7 +33,8 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     panel = load_panel(args.data, spec)
     print(panel.summary)
     result = fit(panel, spec, draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed,
-                 backend=args.backend, progressbar=not args.quiet)
+                 backend=args.backend, progressbar=not args.quiet,
+                 method="advi" if args.approximate else "nuts")
     out = save_fit(result, args.out)
     print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
     print(result.population().to_string(float_format=lambda v: f"{v:.4g}"))
@@ -70,6 +71,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, help="random seed: the same seed gives the same posterior")
     p.add_argument("--backend", choices=["auto", "pymc", "nutpie", "numpyro"], help="NUTS implementation")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--approximate", action="store_true",
+                   help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
     p.set_defaults(func=_cmd_fit)
 
     p = sub.add_parser("demo", help="run the whole job on the invented Harbourline ferry survey")

@@ -144,6 +144,20 @@ def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, v
 _SAMPLERS = {"pymc": _sample_pymc, "nutpie": _sample_nutpie, "numpyro": _sample_numpyro}
 
 
+def _approximate_advi(model, *, draws, seed, iterations, var_names, progressbar):  # type: ignore[no-untyped-def]
+    import pymc as pm
+
+    with model:
+        # Adam with step 0.01 reached the NUTS means in fewer iterations than the default optimiser here
+        approx = pm.fit(n=iterations, method="advi", random_seed=seed, progressbar=progressbar,
+                        obj_optimizer=pm.adam(learning_rate=0.01))
+        idata = approx.sample(draws=draws, random_seed=seed, return_inferencedata=True)
+    post = idata.posterior[[v for v in var_names if v in idata.posterior]]
+    import arviz as az
+
+    return az.InferenceData(posterior=post)
+
+
 def fit(
     panel: ChoicePanel,
     spec: Spec | Mapping[str, Any] | str | Path | None = None,
@@ -156,8 +170,10 @@ def fit(
     target_accept: float | None = None,
     cores: int | None = None,
     progressbar: bool = True,
+    method: str = "nuts",
+    advi_iterations: int = 15_000,
 ) -> ChoiceFit:
-    """Sample the panel mixed logit of ``panel`` with NUTS.
+    """Sample the panel mixed logit of ``panel`` with NUTS (or approximate it with ADVI).
 
     Keyword options override the spec's ``[sampling]`` table; the same seed gives
     the same posterior.
@@ -170,6 +186,13 @@ def fit(
     draws, tune, chains, seed, backend, target_accept, cores : optional
         See ``docs/spec.md`` ([sampling]).
     progressbar : bool, default True
+    method : {"nuts", "advi"}, default "nuts"
+        ``"advi"`` fits a mean-field Gaussian approximation (Kucukelbir et al. 2017,
+        JMLR 18) by stochastic optimisation and draws from it: minutes instead of
+        hours for panels beyond full NUTS on one machine (100,000 persons). Its
+        intervals are usually too narrow; the result is flagged ``approximate``
+        and the convergence checks do not apply to it.
+    advi_iterations : int, default 15000
 
     Returns
     -------
@@ -187,12 +210,19 @@ def fit(
     if not s.store_person_draws:
         keep = [v for v in keep if v not in ("person_taste", "person_wtp")]
     n_cores = s.cores or min(s.chains, 2)
-    log.info("sampling %s chains x %s draws (%s tune) with %s", s.chains, s.draws, s.tune, chosen_backend)
+    if method not in ("nuts", "advi"):
+        raise SpecError(f"method must be 'nuts' or 'advi', got {method!r}.")
     try:
-        idata = _SAMPLERS[chosen_backend](
-            model, draws=s.draws, tune=s.tune, chains=s.chains, cores=n_cores, seed=s.seed,
-            target_accept=s.target_accept, var_names=keep, progressbar=progressbar, mass_matrix=s.mass_matrix,
-        )
+        if method == "advi":
+            log.info("fitting mean-field ADVI (%s iterations)", advi_iterations)
+            idata = _approximate_advi(model, draws=s.draws, seed=s.seed, iterations=advi_iterations,
+                                      var_names=keep, progressbar=progressbar)
+        else:
+            log.info("sampling %s chains x %s draws (%s tune) with %s", s.chains, s.draws, s.tune, chosen_backend)
+            idata = _SAMPLERS[chosen_backend](
+                model, draws=s.draws, tune=s.tune, chains=s.chains, cores=n_cores, seed=s.seed,
+                target_accept=s.target_accept, var_names=keep, progressbar=progressbar, mass_matrix=s.mass_matrix,
+            )
     except (SpecError, FitError):
         raise
     except Exception as err:  # the sampler's own failure, reported in our words
@@ -200,12 +230,15 @@ def fit(
     wall = time.perf_counter() - t0
     idata = _tidy_idata(idata, panel, keep)
     info = {
-        "backend": chosen_backend,
-        "draws": s.draws, "tune": s.tune, "chains": s.chains, "seed": s.seed, "target_accept": s.target_accept,
+        "backend": "pymc-advi" if method == "advi" else chosen_backend,
+        "draws": s.draws, "tune": s.tune, "chains": 1 if method == "advi" else s.chains, "seed": s.seed,
+        "target_accept": s.target_accept,
         "wall_seconds": round(wall, 3),
-        "approximate": False,
-        "method": "NUTS",
+        "approximate": method == "advi",
+        "method": "ADVI (mean-field)" if method == "advi" else "NUTS",
     }
+    if method == "advi":
+        info["advi_iterations"] = advi_iterations
     result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
     if result.has_person_draws:
         add_log_likelihood(result)

@@ -114,3 +114,20 @@ def test_fit_command_bad_backend_option_is_a_clean_error(tmp_path, capsys):
     code = main(["fit", str(data), "--spec", str(spec), "--out", str(tmp_path / "res")])
     assert code == 2
     assert "sampling.draws" in capsys.readouterr().err
+
+
+def test_approximate_path_is_flagged_and_close_to_nuts():
+    sim = hc.benchmark_scenario(150, 8, 3, 2, seed=8)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    nuts = hc.fit(panel, draws=200, tune=200, chains=2, seed=2, progressbar=False)
+    approx = hc.fit(panel, draws=200, seed=2, method="advi", progressbar=False)
+    assert approx.approximate and not nuts.approximate
+    assert approx.info["method"].startswith("ADVI")
+    assert set(approx.posterior.data_vars) == set(nuts.posterior.data_vars)
+    assert "approximate" in repr(approx)
+    # population means of normal tastes within 2 posterior SDs of NUTS (the target for the approximate path;
+    # mean-field ADVI is known to understate SDs, so only the means are held to it)
+    a, n = approx.population(), nuts.population()
+    rows = [r for r in n.index if r.startswith("taste_mean")]
+    z = ((a.loc[rows, "mean"] - n.loc[rows, "mean"]) / n.loc[rows, "sd"]).abs()
+    assert (z < 2).all(), z
