@@ -185,6 +185,20 @@ def _as_indicator(frame: pd.DataFrame, col: str, role: str) -> pd.Series:
     return numeric.astype(bool)
 
 
+#: Helper columns the build adds to the table; a role, attribute or covariate column may not use them.
+_RESERVED = ("_pos", "_first_chosen", "_chosen", "_avail", "_row")
+
+
+def _check_reserved(columns: Mapping[str, str]) -> None:
+    clash = {role: c for role, c in columns.items() if c in _RESERVED or c.startswith("_v_")}
+    if clash:
+        listed = "; ".join(f"{c!r} ({role})" for role, c in clash.items())
+        raise DataError(
+            f"Column name(s) {listed} are reserved for hierchoice's own helper columns "
+            f"({', '.join(_RESERVED)}, _v_*). Rename the column(s) in the table and the spec."
+        )
+
+
 def _label(value: Any) -> str:
     if isinstance(value, (float, np.floating)) and float(value).is_integer():
         return str(int(value))
@@ -408,6 +422,7 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
     if absent:
         listed = "; ".join(f"{c!r} ({role})" for role, c in absent.items())
         raise DataError(f"Missing column(s): {listed}. The table has: {first_few(list(df.columns), 12)}.")
+    _check_reserved(needed)
 
     # 2. ids
     for c in (cols.person, cols.task, cols.alternative):
@@ -808,6 +823,11 @@ def wide_to_long(frame: pd.DataFrame, spec: Spec | Mapping[str, Any] | str | Pat
     for role, c in (("person", cols.person), ("task", cols.task), ("wide.choice", wide.choice)):
         if c not in frame.columns:
             raise DataError(f"Missing column {c!r} ({role}) in the wide table; it has {first_few(list(frame.columns), 12)}.")
+    _check_reserved({"person": cols.person, "task": cols.task, "alternative": cols.alternative,
+                     "chosen": cols.chosen}
+                    | ({"available": cols.available} if cols.available else {})
+                    | {f"attribute {a.name}": a.source for a in spec.attributes.values()}
+                    | {f"covariate {c}": c for c in (spec.covariates.columns if spec.covariates else ())})
     labels = wide.choice_labels or {a: a for a in wide.alternatives}
     choice = frame[wide.choice].map(lambda v: None if pd.isna(v) else _label(v))
     mapped = choice.map(lambda v: labels.get(v) if v is not None else None)
