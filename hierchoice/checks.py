@@ -1,0 +1,726 @@
+r"""Convergence diagnostics as data: one record per check, with its value, threshold, verdict and advice.
+
+The numbers come from ArviZ (rank-normalised split :math:`\hat R`, bulk and tail
+effective sample sizes, E-BFMI); this module only grades them and says what to
+do. Nothing here raises on a bad fit or logs: a convergence problem is a
+:class:`Check` record with verdict ``"warn"`` or ``"fail"`` that the caller
+reports (the ``hierchoice check`` command, a notebook, a test).
+
+The checks and their grades (pass / warn / fail):
+
+``rhat``
+    Worst rank-normalised split R-hat of each population variable: pass below
+    1.01, warn below 1.05, fail at 1.05 or more (Vehtari, Gelman, Simpson,
+    Carpenter & Bürkner 2021; the 1.05 line is common practice).
+``ess_bulk``, ``ess_tail``
+    Smallest bulk / tail ESS, total over chains: pass at 400 or more, warn at 100
+    or more, fail below 100 (Vehtari et al. 2021; 100 is common practice: the
+    Monte Carlo error of a mean is then 10 % of its posterior SD).
+``divergences``
+    Post-warm-up divergent transitions: pass at 0, fail otherwise (Betancourt
+    2017, section 6.2).
+``ebfmi``
+    Lowest E-BFMI over chains: pass at 0.3 or more, fail below (Betancourt 2017,
+    section 6.1).
+``tree_depth``
+    Share of draws that stopped at the maximum tree depth, worst chain: pass at
+    0, warn otherwise; an efficiency problem, never a fail (Hoffman & Gelman 2014;
+    common practice).
+``person_rhat``, ``person_ess_bulk``
+    The same over every person taste (worst R-hat, smallest ESS, with the share
+    over the threshold); the ESS record is at most a warning.
+``lognormal_sd``
+    Posterior median of the SD of a lognormal log-taste: warn below 0.05
+    (collapsed) or above 2 (implausibly wide); common practice.
+
+References
+----------
+Vehtari, A., Gelman, A., Simpson, D., Carpenter, B. & Bürkner, P.-C. (2021).
+Rank-normalization, folding, and localization: an improved :math:`\hat R` for
+assessing convergence of MCMC. *Bayesian Analysis* 16(2), 667–718.
+
+Betancourt, M. (2017). A conceptual introduction to Hamiltonian Monte Carlo.
+arXiv:1701.02434.
+
+Hoffman, M. D. & Gelman, A. (2014). The No-U-Turn sampler. *Journal of Machine
+Learning Research* 15, 1593–1623.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+from collections.abc import Iterable, Sequence
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .model import POPULATION_VARS, ModelLayout
+
+__all__ = [
+    "RHAT_MAX",
+    "RHAT_FAIL",
+    "ESS_MIN",
+    "ESS_FAIL",
+    "EBFMI_MIN",
+    "MAX_TREE_DEPTH",
+    "LOG_SD_COLLAPSED",
+    "LOG_SD_LARGE",
+    "VERDICTS",
+    "Check",
+    "population_draws",
+    "parameter_diagnostics",
+    "population_checks",
+    "sampler_checks",
+    "person_checks",
+    "lognormal_sd_checks",
+    "convergence_checks",
+    "checks_frame",
+    "overall_verdict",
+    "check_folder",
+    "format_verdict",
+]
+
+#: R-hat (rank-normalised split) below this passes (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021).
+RHAT_MAX = 1.01
+#: R-hat at or above this fails; in between is a warning (common practice: the older 1.05 rule).
+RHAT_FAIL = 1.05
+#: Bulk and tail ESS (total over chains) at or above this pass (Vehtari et al. 2021: 100 per chain, 4 chains).
+ESS_MIN = 400
+#: Below this the ESS fails: the Monte Carlo error of a mean exceeds 10 % of its posterior SD (common practice).
+ESS_FAIL = 100
+#: E-BFMI below this in any chain fails (Betancourt 2017, arXiv:1701.02434).
+EBFMI_MIN = 0.3
+#: The default maximum tree depth of nutpie, PyMC and numpyro NUTS (used when no saturation flag is stored).
+MAX_TREE_DEPTH = 10
+#: A lognormal taste whose SD of log-taste has posterior median below this has collapsed (common practice).
+LOG_SD_COLLAPSED = 0.05
+#: ... and above this is implausibly wide: e^(2*2) ≈ 55-fold spread between the 16th and 84th percentile person.
+LOG_SD_LARGE = 2.0
+
+#: Person-level LOO settings of :func:`check_folder` (lighter than the defaults of
+#: :func:`hierchoice.compare.person_loo`; the report gives the Monte Carlo error they leave).
+FOLDER_N_SIM = 100
+FOLDER_MAX_DRAWS = 200
+
+VERDICTS = ("pass", "warn", "fail")
+_RANK = {v: i for i, v in enumerate(VERDICTS)}
+
+_REF_RHAT = "Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021), Bayesian Analysis 16(2)"
+_REF_EBFMI = "Betancourt (2017), arXiv:1701.02434, section 6.1"
+_REF_DIV = "Betancourt (2017), arXiv:1701.02434, section 6.2"
+_REF_DEPTH = "Hoffman & Gelman (2014), JMLR 15; common practice"
+_REF_COMMON = "common practice"
+
+
+@dataclass(frozen=True)
+class Check:
+    """One graded diagnostic.
+
+    Attributes
+    ----------
+    check : str
+        What was measured (``rhat``, ``ess_bulk``, ``divergences``, ...).
+    subject : str
+        Which quantity: a variable (``taste_sd``), its worst element (``taste_sd[fare]``),
+        ``sampler`` or ``person_taste``.
+    value : float
+        The measured value (NaN when it could not be computed).
+    threshold : float
+        The pass threshold; ``rule`` says in which direction.
+    rule : str
+        The pass rule as text, e.g. ``"value < 1.01"``.
+    verdict : {"pass", "warn", "fail"}
+    advice : str
+        What to do about it, in plain words; empty on a pass.
+    reference : str
+        Where the threshold comes from.
+    detail : str
+        Extra facts (which element, how many over the threshold).
+    """
+
+    check: str
+    subject: str
+    value: float
+    threshold: float
+    rule: str
+    verdict: str
+    advice: str = ""
+    reference: str = ""
+    detail: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        out = asdict(self)
+        out["value"] = _json_number(self.value)
+        out["threshold"] = _json_number(self.threshold)
+        return out
+
+
+# --------------------------------------------------------------------------- grading kernels
+
+
+def _grade_upper(value: float, ok: float, bad: float) -> str:
+    """Smaller is better: pass below ``ok``, warn below ``bad``, fail otherwise (NaN warns)."""
+    if not np.isfinite(value):
+        return "warn"
+    return "pass" if value < ok else "warn" if value < bad else "fail"
+
+
+def _grade_lower(value: float, ok: float, bad: float) -> str:
+    """Larger is better: pass at or above ``ok``, warn at or above ``bad``, fail otherwise (NaN warns)."""
+    if not np.isfinite(value):
+        return "warn"
+    return "pass" if value >= ok else "warn" if value >= bad else "fail"
+
+
+def overall_verdict(checks: Iterable[Check]) -> str:
+    """The worst verdict among ``checks`` (``"pass"`` when there are none)."""
+    worst = 0
+    for c in checks:
+        worst = max(worst, _RANK[c.verdict])
+    return VERDICTS[worst]
+
+
+def checks_frame(checks: Sequence[Check]) -> pd.DataFrame:
+    """The records as a tidy table, one row per check."""
+    cols = ["check", "subject", "value", "threshold", "rule", "verdict", "advice", "reference", "detail"]
+    return pd.DataFrame([asdict(c) for c in checks], columns=cols)
+
+
+# --------------------------------------------------------------------------- population parameters
+
+
+def _label(name: str, *parts: Any) -> str:
+    return f"{name}[{','.join(str(p) for p in parts)}]"
+
+
+def population_draws(posterior: xr.Dataset, var_names: Sequence[str] = POPULATION_VARS) -> xr.DataArray:
+    """Every scalar population parameter as one DataArray with dims (chain, draw, parameter).
+
+    ``parameter`` labels read ``taste_mean[fare]``, ``taste_corr[fare,time]`` (upper
+    triangle only: the diagonal is 1 and the lower triangle repeats it) and
+    ``covariate_effect[age,fare]``; the coordinate ``variable`` names the variable.
+    """
+    columns: list[np.ndarray] = []
+    labels: list[str] = []
+    variables: list[str] = []
+    for name in var_names:
+        if name not in posterior:
+            continue
+        da = posterior[name]
+        other = [d for d in da.dims if d not in ("chain", "draw")]
+        da = da.transpose("chain", "draw", *other)
+        values = da.values
+        if name == "taste_corr":
+            names = [str(v) for v in da[other[0]].values]
+            for i in range(len(names)):
+                for j in range(i + 1, len(names)):
+                    columns.append(values[:, :, i, j])
+                    labels.append(_label(name, names[i], names[j]))
+                    variables.append(name)
+            continue
+        if not other:
+            columns.append(values)
+            labels.append(name)
+            variables.append(name)
+            continue
+        grids = [[str(v) for v in da[d].values] for d in other]
+        for index in np.ndindex(*values.shape[2:]):
+            columns.append(values[(slice(None), slice(None)) + index])
+            labels.append(_label(name, *(grids[a][i] for a, i in enumerate(index))))
+            variables.append(name)
+    n_c, n_d = posterior.sizes["chain"], posterior.sizes["draw"]
+    data = np.stack(columns, axis=-1) if columns else np.zeros((n_c, n_d, 0))
+    return xr.DataArray(
+        data, dims=("chain", "draw", "parameter"),
+        coords={"chain": posterior["chain"].values, "draw": posterior["draw"].values, "parameter": labels,
+                "variable": ("parameter", variables)},
+        name="population",
+    )
+
+
+def _diagnose(da: xr.DataArray) -> pd.DataFrame:
+    """ArviZ R-hat (rank), bulk and tail ESS of each element of ``da`` along ``dim``."""
+    import arviz as az
+
+    ds = xr.Dataset({"x": da})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # constant elements give NaN, reported as such
+        rhat = az.rhat(ds, method="rank")["x"]
+        bulk = az.ess(ds, method="bulk")["x"]
+        tail = az.ess(ds, method="tail")["x"]
+    flat = da.stack(__s=("chain", "draw"))
+    return pd.DataFrame({
+        "rhat": rhat.values.ravel(), "ess_bulk": bulk.values.ravel(), "ess_tail": tail.values.ravel(),
+        "mean": flat.mean("__s").values.ravel(), "sd": flat.std("__s").values.ravel(),
+    })
+
+
+def parameter_diagnostics(idata: Any, var_names: Sequence[str] = POPULATION_VARS) -> pd.DataFrame:
+    """R-hat, bulk and tail ESS (ArviZ), mean and SD of every population parameter.
+
+    Rows are indexed by the labels of :func:`population_draws`; parameters that are
+    constant over all draws (nothing to diagnose) get NaN.
+    """
+    da = population_draws(idata.posterior, var_names)
+    if da.sizes["parameter"] == 0:
+        return pd.DataFrame(columns=["variable", "rhat", "ess_bulk", "ess_tail", "mean", "sd"])
+    frame = _diagnose(da)
+    frame.index = pd.Index(da["parameter"].values, name="parameter")
+    frame.insert(0, "variable", da["variable"].values)
+    constant = frame["sd"].to_numpy() == 0
+    frame.loc[constant, ["rhat", "ess_bulk", "ess_tail"]] = np.nan
+    return frame
+
+
+def _advice_rhat(variable: str, label: str, value: float) -> str:
+    base = (f"The chains disagree about {label} (R-hat {value:.3f}). Run longer (double tune and draws) and "
+            "look at the rank and trace plots: one chain stuck away from the others, or two separate modes, "
+            "is a model problem rather than a matter of length.")
+    if variable == "taste_sd":
+        return base + (" For a taste SD, a chain that sits near zero while others do not points to weak "
+                       "identification of the heterogeneity: consider a fixed taste for that attribute.")
+    if variable == "taste_corr":
+        return base + " Correlations need many persons; with few, set model.correlated = false."
+    return base + " Check that no attribute is (nearly) collinear with a constant or another attribute."
+
+
+def _advice_ess(kind: str, variable: str, label: str, value: float) -> str:
+    what = "the centre" if kind == "ess_bulk" else "the tails (interval ends)"
+    if variable == "taste_sd":
+        return (f"Too few effective draws for {what} of {label} (ESS {value:.0f}): taste SDs mix slowest. "
+                "Raise draws (ESS grows about in proportion); with many tasks per person also try "
+                "model.parameterization = \"centred\".")
+    return (f"Too few effective draws for {what} of {label} (ESS {value:.0f}): raise draws (ESS grows about "
+            "in proportion to them) and, if it stays low, look for strong posterior correlations in the pair plot.")
+
+
+def population_checks(idata: Any, var_names: Sequence[str] = POPULATION_VARS,
+                      table: pd.DataFrame | None = None) -> list[Check]:
+    """R-hat, bulk ESS and tail ESS of each population variable, graded at its worst element.
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+    var_names : sequence of str, default :data:`hierchoice.model.POPULATION_VARS`
+    table : DataFrame, optional
+        A :func:`parameter_diagnostics` table already computed.
+    """
+    table = parameter_diagnostics(idata, var_names) if table is None else table
+    out: list[Check] = []
+    for variable in var_names:
+        rows = table[table["variable"] == variable]
+        if rows.empty:
+            continue
+        r = rows["rhat"]
+        if r.notna().any():
+            label = str(r.idxmax())
+            v = float(r.max())
+            verdict = _grade_upper(v, RHAT_MAX, RHAT_FAIL)
+            n_over = int((r >= RHAT_MAX).sum())
+            out.append(Check("rhat", variable, v, RHAT_MAX, f"value < {RHAT_MAX}", verdict,
+                             "" if verdict == "pass" else _advice_rhat(variable, label, v), _REF_RHAT,
+                             f"worst {label}; {n_over} of {r.notna().sum()} at or over {RHAT_MAX}"))
+        for kind in ("ess_bulk", "ess_tail"):
+            e = rows[kind]
+            if not e.notna().any():
+                continue
+            label = str(e.idxmin())
+            v = float(e.min())
+            verdict = _grade_lower(v, ESS_MIN, ESS_FAIL)
+            out.append(Check(kind, variable, v, ESS_MIN, f"value >= {ESS_MIN}", verdict,
+                             "" if verdict == "pass" else _advice_ess(kind, variable, label, v), _REF_RHAT,
+                             f"smallest {label}; {int((e < ESS_MIN).sum())} of {e.notna().sum()} below {ESS_MIN}"))
+    return out
+
+
+# --------------------------------------------------------------------------- the sampler
+
+
+def _post_warmup(stat: xr.DataArray, stats: xr.Dataset) -> np.ndarray:
+    """The (chain, draw) values of a sampler statistic, without any warm-up draws that were stored."""
+    values = stat.transpose("chain", "draw").values
+    if "tuning" in stats:
+        tuning = stats["tuning"].transpose("chain", "draw").values.astype(bool)
+        if tuning.any():
+            return np.where(tuning, np.nan, values.astype(float))
+    return values.astype(float)
+
+
+def sampler_checks(idata: Any) -> list[Check]:
+    """Divergences, E-BFMI and tree-depth saturation from ``idata.sample_stats``.
+
+    Works with the statistic names of nutpie (``diverging``, ``depth``,
+    ``maxdepth_reached``, ``energy``) and of PyMC (``diverging``, ``tree_depth``,
+    ``reached_max_treedepth``, ``energy``); a statistic that is absent gives a
+    warning record saying so.
+    """
+    import arviz as az
+
+    if "sample_stats" not in idata.groups():
+        return [Check("sampler_stats", "sampler", math.nan, math.nan, "sample_stats present", "warn",
+                      "The fit stores no sampler statistics: divergences, E-BFMI and tree depth cannot be checked. "
+                      "Refit with an MCMC backend that records them.", "")]
+    stats = idata.sample_stats
+    out: list[Check] = []
+
+    if "diverging" in stats:
+        div = _post_warmup(stats["diverging"], stats)
+        n_div = int(np.nansum(div))
+        n_all = int(np.isfinite(div).sum())
+        per_chain = ", ".join(str(int(np.nansum(row))) for row in div)
+        verdict = "pass" if n_div == 0 else "fail"
+        out.append(Check(
+            "divergences", "sampler", float(n_div), 0.0, "value == 0", verdict,
+            "" if verdict == "pass" else
+            (f"{n_div} of {n_all} draws ended in a divergence: the sampler met curvature it cannot follow and the "
+             "posterior may be biased. Raise sampling.target_accept (e.g. 0.95, then 0.99); if they persist, "
+             "switch model.parameterization (noncentred <-> centred; centred suits persons with many tasks), "
+             "or tighten model.prior_scale. The pair plot marks where they happen."),
+            _REF_DIV, f"per chain: {per_chain}"))
+    else:
+        out.append(Check("divergences", "sampler", math.nan, 0.0, "value == 0", "warn",
+                         "No 'diverging' statistic stored: divergences cannot be checked.", _REF_DIV))
+
+    if "energy" in stats:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            e = _post_warmup(stats["energy"], stats)
+            e = np.where(np.isfinite(e), e, np.nanmean(e, axis=1, keepdims=True))
+            bfmi = np.asarray(az.bfmi(e), dtype=float)
+        v = float(np.nanmin(bfmi)) if bfmi.size else math.nan
+        verdict = "warn" if not np.isfinite(v) else "pass" if v >= EBFMI_MIN else "fail"
+        out.append(Check(
+            "ebfmi", "sampler", v, EBFMI_MIN, f"value >= {EBFMI_MIN} in every chain", verdict,
+            "" if verdict == "pass" else
+            (f"E-BFMI {v:.2f} (lowest chain): the momentum resampling barely moves the energy, so the sampler "
+             "explores the tails slowly (heavy tails or a funnel). Reparameterize (model.parameterization), "
+             "tighten model.prior_scale, or check for a lognormal taste with a very large SD."),
+            _REF_EBFMI, "per chain: " + ", ".join(f"{b:.2f}" for b in bfmi)))
+    else:
+        out.append(Check("ebfmi", "sampler", math.nan, EBFMI_MIN, f"value >= {EBFMI_MIN} in every chain", "warn",
+                         "No 'energy' statistic stored: E-BFMI cannot be checked.", _REF_EBFMI))
+
+    flag = next((n for n in ("maxdepth_reached", "reached_max_treedepth") if n in stats), None)
+    depth_name = next((n for n in ("depth", "tree_depth") if n in stats), None)
+    if flag is not None:
+        sat = _post_warmup(stats[flag], stats)
+        how = f"'{flag}' flag"
+    elif depth_name is not None:
+        sat = (_post_warmup(stats[depth_name], stats) >= MAX_TREE_DEPTH).astype(float)
+        how = f"'{depth_name}' >= {MAX_TREE_DEPTH}"
+    else:
+        sat = None
+    if sat is not None:
+        share = np.nanmean(sat, axis=1)
+        v = float(np.nanmax(share)) if share.size else math.nan
+        verdict = "pass" if v == 0 else "warn"
+        out.append(Check(
+            "tree_depth", "sampler", v, 0.0, "share of draws at the maximum tree depth == 0 in every chain", verdict,
+            "" if verdict == "pass" else
+            (f"In the worst chain {v:.1%} of draws stopped at the maximum tree depth: the trajectories were cut "
+             "short, so sampling is slow and ESS low (an efficiency problem, not a bias). Look for strongly "
+             "correlated parameters (pair plot), attributes on extreme scales, or a weakly identified constant; "
+             "a longer tune lets the mass matrix adapt."),
+            _REF_DEPTH, f"from the {how}; per chain: " + ", ".join(f"{s:.1%}" for s in share)))
+    else:
+        out.append(Check("tree_depth", "sampler", math.nan, 0.0, "share at maximum depth == 0", "warn",
+                         "No tree-depth statistic stored: saturation cannot be checked.", _REF_DEPTH))
+    return out
+
+
+# --------------------------------------------------------------------------- person tastes
+
+
+def person_checks(idata: Any) -> list[Check]:
+    """Worst R-hat and smallest bulk ESS over every person taste, with the share over the threshold.
+
+    The ESS record is at most a warning: person tastes feed predictions, which are
+    averages over persons and need fewer effective draws than population parameters.
+    """
+    post = idata.posterior
+    if "person_taste" not in post:
+        return []
+    da = post["person_taste"].transpose("chain", "draw", "person", "attribute")
+    table = _diagnose(da)
+    n_p, n_k = da.sizes["person"], da.sizes["attribute"]
+    persons = np.repeat(np.asarray(da["person"].values, dtype=object), n_k)
+    attrs = np.tile(np.asarray(da["attribute"].values, dtype=object), n_p)
+    table["label"] = [f"person_taste[{p},{a}]" for p, a in zip(persons, attrs)]
+    table.loc[table["sd"].to_numpy() == 0, ["rhat", "ess_bulk", "ess_tail"]] = np.nan
+    out: list[Check] = []
+    r = table["rhat"]
+    if r.notna().any():
+        i = int(r.idxmax())
+        v = float(r.max())
+        share = float((r >= RHAT_MAX).sum() / r.notna().sum())
+        verdict = _grade_upper(v, RHAT_MAX, RHAT_FAIL)
+        out.append(Check(
+            "person_rhat", "person_taste", v, RHAT_MAX, f"worst value < {RHAT_MAX}", verdict,
+            "" if verdict == "pass" else
+            (f"The chains disagree about some persons' tastes (worst {table.at[i, 'label']}, R-hat {v:.3f}; "
+             f"{share:.1%} of person tastes at or over {RHAT_MAX}). Run longer; if the population parameters "
+             "also fail, fix those first — person tastes follow them."),
+            _REF_RHAT, f"worst {table.at[i, 'label']}; share at or over {RHAT_MAX}: {share:.4f}"))
+    e = table["ess_bulk"]
+    if e.notna().any():
+        i = int(e.idxmin())
+        v = float(e.min())
+        share = float((e < ESS_MIN).sum() / e.notna().sum())
+        verdict = _grade_lower(v, ESS_MIN, ESS_FAIL)
+        verdict = "warn" if verdict == "fail" else verdict
+        out.append(Check(
+            "person_ess_bulk", "person_taste", v, ESS_MIN, f"smallest value >= {ESS_MIN}", verdict,
+            "" if verdict == "pass" else
+            (f"Some person tastes have few effective draws (smallest {table.at[i, 'label']}, ESS {v:.0f}; "
+             f"{share:.1%} below {ESS_MIN}). Person-level summaries (individual WTP, hit rates) are noisier; "
+             "raise draws if you report persons one by one."),
+            _REF_RHAT, f"smallest {table.at[i, 'label']}; share below {ESS_MIN}: {share:.4f}"))
+    return out
+
+
+# --------------------------------------------------------------------------- model-specific
+
+
+def lognormal_sd_checks(idata: Any, layout: ModelLayout) -> list[Check]:
+    """Posterior median of the SD of each lognormal log-taste: collapsed (< 0.05) or too wide (> 2) warns."""
+    post = idata.posterior
+    if "taste_sd" not in post:
+        return []
+    out: list[Check] = []
+    for k in layout.random:
+        if not layout.is_lognormal(k):
+            continue
+        name = layout.names[k]
+        v = float(post["taste_sd"].sel(random_attribute=name).median())
+        if v < LOG_SD_COLLAPSED:
+            verdict, advice = "warn", (
+                f"The SD of log-taste of {name!r} collapsed to about {v:.3f}: the model finds almost no spread "
+                "of this taste. With a lognormal taste that often means the attribute is badly scaled or coded "
+                "(check its units, that its levels vary within tasks, and the sign), or that a constant "
+                "absorbs it. If the data truly show no spread, make the taste fixed; a collapsing SD also "
+                "invites divergences.")
+        elif v > LOG_SD_LARGE:
+            verdict, advice = "warn", (
+                f"The SD of log-taste of {name!r} is about {v:.2f}: the implied tastes span orders of magnitude "
+                "and the implied mean is dominated by a few persons. Check the attribute's scaling and sign "
+                "(a wrong sign makes the log-taste run to -inf for many persons), and outliers in its values.")
+        else:
+            verdict, advice = "pass", ""
+        out.append(Check("lognormal_sd", f"taste_sd[{name}]", v, LOG_SD_COLLAPSED,
+                         f"{LOG_SD_COLLAPSED} <= posterior median <= {LOG_SD_LARGE}", verdict, advice, _REF_COMMON))
+    return out
+
+
+def convergence_checks(result: Any, *, layout: ModelLayout | None = None,
+                       table: pd.DataFrame | None = None) -> list[Check]:
+    """Every convergence record of a fit: population parameters, sampler, person tastes, lognormal SDs.
+
+    Parameters
+    ----------
+    result : ChoiceFit or arviz.InferenceData
+    layout : ModelLayout, optional
+        Needed for the lognormal checks when ``result`` is a bare InferenceData.
+    table : DataFrame, optional
+        A :func:`parameter_diagnostics` table already computed.
+
+    Returns
+    -------
+    list of Check
+
+    Examples
+    --------
+    >>> import hierchoice as hc                                    # doctest: +SKIP
+    >>> checks = convergence_checks(hc.load_fit("results"))        # doctest: +SKIP
+    >>> overall_verdict(checks)                                    # doctest: +SKIP
+    'pass'
+    """
+    idata = getattr(result, "idata", result)
+    layout = layout if layout is not None else getattr(result, "layout", None)
+    out = population_checks(idata, table=table) + sampler_checks(idata) + person_checks(idata)
+    if layout is not None:
+        out += lognormal_sd_checks(idata, layout)
+    return out
+
+
+# --------------------------------------------------------------------------- the results folder
+
+
+def _json_number(value: Any) -> Any:
+    try:
+        f = float(value)
+    except (TypeError, ValueError):
+        return value
+    if not math.isfinite(f):
+        return None
+    return int(f) if isinstance(value, (int, np.integer)) and not isinstance(value, bool) else f
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, pd.DataFrame):
+        return _jsonable(obj.reset_index().to_dict(orient="records"))
+    if isinstance(obj, pd.Series):
+        return _jsonable(obj.to_dict())
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, float, np.integer, np.floating)):
+        return _json_number(obj)
+    if obj is None or isinstance(obj, str):
+        return obj
+    return str(obj)
+
+
+THRESHOLDS = {
+    "rhat": {"pass_below": RHAT_MAX, "fail_at": RHAT_FAIL, "reference": _REF_RHAT + "; 1.05: common practice"},
+    "ess_bulk": {"pass_at": ESS_MIN, "fail_below": ESS_FAIL, "reference": _REF_RHAT + "; 100: common practice"},
+    "ess_tail": {"pass_at": ESS_MIN, "fail_below": ESS_FAIL, "reference": _REF_RHAT + "; 100: common practice"},
+    "ebfmi": {"pass_at": EBFMI_MIN, "reference": _REF_EBFMI},
+    "divergences": {"pass_at_most": 0, "reference": _REF_DIV},
+    "tree_depth": {"pass_at_most": 0.0, "reference": _REF_DEPTH},
+    "lognormal_sd": {"warn_below": LOG_SD_COLLAPSED, "warn_above": LOG_SD_LARGE, "reference": _REF_COMMON},
+}
+
+
+def check_folder(folder: str | Path, *, out: str | Path | None = None) -> tuple[dict[str, Any], int]:
+    """Check a results folder: convergence verdict, predictive summary, LOO, plots and ``diagnostics.json``.
+
+    Loads the fit (:func:`hierchoice.archive.load_fit`), grades every convergence
+    check, computes the in-sample hit rate, reliability table and posterior-predictive
+    shares (:mod:`hierchoice.predictive`), task- and person-level PSIS-LOO
+    (:mod:`hierchoice.compare`), and writes ``diagnostics.json`` and the diagnostic
+    plots (PNG) atomically. Prints nothing.
+
+    Parameters
+    ----------
+    folder : path
+        A results folder written by :func:`hierchoice.save_fit`.
+    out : path, optional
+        Where to write ``diagnostics.json`` and the plots; defaults to ``folder``.
+
+    Returns
+    -------
+    report : dict
+        JSON-ready: ``verdict``, ``checks`` (every check with value, threshold, verdict
+        and advice), ``parameters``, ``predictive``, ``loo``, ``plots``, ``thresholds``.
+    exit_code : int
+        0 when no convergence check failed, 1 otherwise (warnings do not count).
+    """
+    from ._io import atomic_write_text
+    from .archive import load_fit
+    from .compare import person_loo, pareto_k_checks, task_loo
+    from .diagnostic_plots import write_diagnostic_plots
+    from .predictive import hit_rate, posterior_choice_probabilities, ppc_shares, reliability
+
+    folder = Path(folder)
+    target = Path(out) if out is not None else folder
+    result = load_fit(folder)
+    report: dict[str, Any] = {"folder": str(folder), "fit": dict(result.info), "notes": []}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table = parameter_diagnostics(result.idata)
+        checks = convergence_checks(result, table=table)
+        report["verdict"] = overall_verdict(checks)
+        report["checks"] = [c.to_dict() for c in checks]
+        report["parameters"] = table
+        report["thresholds"] = THRESHOLDS
+
+        rel = shares = None
+        if result.has_person_draws:
+            prob = posterior_choice_probabilities(result)
+            hr = hit_rate(result, probabilities=prob)
+            rel = reliability(result, probabilities=prob)
+            shares = ppc_shares(result, seed=0)
+            n = rel["n"].sum()
+            report["predictive"] = {
+                "hit_rate": hr.to_dict(),
+                "calibration_error": float((rel["n"] * (rel["observed"] - rel["mean_predicted"]).abs()).sum() / n),
+                "reliability": rel,
+                "shares": shares,
+                "shares_outside_interval": int(shares["outside"].sum()),
+            }
+            loo_t = task_loo(result)
+            loo_p, mc = person_loo(result, n_sim=FOLDER_N_SIM, max_draws=FOLDER_MAX_DRAWS, seed=0,
+                                   return_estimate=True)
+            k_checks = pareto_k_checks(loo_t, "task") + pareto_k_checks(loo_p, "person")
+            report["loo"] = {
+                "task": _loo_dict(loo_t),
+                "person": _loo_dict(loo_p) | {"mean_mc_se": float(mc["mc_se"].mean()), "n_sim": FOLDER_N_SIM,
+                                               "max_draws": FOLDER_MAX_DRAWS},
+                "checks": [c.to_dict() for c in k_checks],
+            }
+        else:
+            report["notes"].append("the fit stores no person draws: hit rate, PPC and LOO were skipped")
+        plots = write_diagnostic_plots(result, target, reliability_table=rel, shares_table=shares, table=table)
+        report["plots"] = {name: path.name for name, path in plots.items()}
+    code = 1 if any(c.verdict == "fail" for c in checks) else 0
+    report["exit_code"] = code
+    report = _jsonable(report)
+    atomic_write_text(target / "diagnostics.json", json.dumps(report, indent=2) + "\n")
+    return report, code
+
+
+def _loo_dict(loo: Any) -> dict[str, Any]:
+    k = np.asarray(loo["pareto_k"]).ravel()
+    return {
+        "elpd_loo": float(loo["elpd_loo"]), "se": float(loo["se"]), "p_loo": float(loo["p_loo"]),
+        "n_data_points": int(loo["n_data_points"]), "n_samples": int(loo["n_samples"]),
+        "good_k": float(loo["good_k"]), "n_bad_k": int((k > float(loo["good_k"])).sum()),
+        "max_k": float(np.max(k)) if k.size else None,
+    }
+
+
+_MARK = {"pass": "PASS", "warn": "WARN", "fail": "FAIL"}
+
+
+def format_verdict(report: dict[str, Any]) -> str:
+    """A plain-text account of a :func:`check_folder` report, for printing."""
+    lines = [f"convergence verdict: {report.get('verdict', '?').upper()}"
+             f"  ({report.get('folder', '')})", ""]
+    checks = report.get("checks", [])
+    width = max((len(f"{c['check']} {c['subject']}") for c in checks), default=10)
+    for c in checks:
+        value = c["value"]
+        shown = "n/a" if value is None else f"{value:.4g}"
+        name = f"{c['check']} {c['subject']}"
+        lines.append(f"  {_MARK[c['verdict']]}  {name:<{width}}  {shown:>9}   ({c['rule']})")
+    todo = [c for c in checks if c["verdict"] != "pass" and c.get("advice")]
+    if todo:
+        lines += ["", "what to do:"]
+        for c in todo:
+            lines.append(f"  - [{c['check']} {c['subject']}] {c['advice']}")
+    pred = report.get("predictive")
+    if pred:
+        hr = pred["hit_rate"]
+        lines += ["", f"in-sample hit rate {hr['hit_rate']:.3f} (chance {hr['chance_rate']:.3f}, "
+                      f"{int(hr['n_tasks'])} tasks); calibration error {pred['calibration_error']:.3f}; "
+                      f"{pred['shares_outside_interval']} of {len(pred['shares'])} predicted shares outside "
+                      "their 90% interval"]
+    loo = report.get("loo")
+    if loo:
+        for level in ("task", "person"):
+            d = loo[level]
+            lines.append(f"PSIS-LOO ({level} level): elpd {d['elpd_loo']:.1f} (se {d['se']:.1f}), p_loo "
+                         f"{d['p_loo']:.1f}, {d['n_bad_k']} of {d['n_data_points']} Pareto k > {d['good_k']:.2f}")
+        for c in loo.get("checks", []):
+            if c["verdict"] != "pass":
+                lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
+    for note in report.get("notes", []):
+        lines.append(f"note: {note}")
+    if report.get("plots"):
+        lines += ["", "plots: " + ", ".join(report["plots"].values())]
+    code = report.get("exit_code")
+    if code is not None:
+        lines += ["", "no convergence check failed" if code == 0 else
+                  "some convergence checks FAILED: do not read the results until they pass"]
+    return "\n".join(lines)

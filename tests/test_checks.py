@@ -1,0 +1,269 @@
+"""Convergence checks: a healthy small fit passes, a deliberately broken one fails the right checks.
+
+One real fit (60 invented persons, 2 chains x 800 draws, nutpie) is shared by the module; the broken
+fits are made from it by hand (a chain shifted away from the other, few draws, divergences and a
+drifting energy written into sample_stats), so each failure has a known cause.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import arviz as az
+import numpy as np
+import pytest
+import xarray as xr
+from hypothesis import given
+from hypothesis import strategies as st
+
+import hierchoice as hc
+from hierchoice import checks
+from hierchoice.checks import (
+    EBFMI_MIN, ESS_MIN, RHAT_MAX, check_folder, convergence_checks, format_verdict, lognormal_sd_checks,
+    overall_verdict, parameter_diagnostics, population_draws, sampler_checks,
+)
+from hierchoice.fit import ChoiceFit
+from hierchoice.model import model_layout
+
+
+@pytest.fixture(scope="module")
+def healthy() -> ChoiceFit:
+    sim = hc.benchmark_scenario(n_persons=60, n_tasks=8, n_alternatives=3, n_attributes=2, seed=3)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    return hc.fit(panel, draws=800, tune=500, chains=2, seed=1, backend="nutpie", progressbar=False)
+
+
+def _by(records: list[checks.Check], check: str, subject: str | None = None) -> checks.Check:
+    found = [c for c in records if c.check == check and (subject is None or c.subject == subject)]
+    assert len(found) == 1, (check, subject, found)
+    return found[0]
+
+
+def _broken(fit: ChoiceFit, n_draws: int = 30) -> ChoiceFit:
+    """Few draws; chain 1 of taste_mean[x1] and of every person's x1 taste shifted far away; 5 divergences,
+    a drifting energy (E-BFMI near 0) and 20 % of chain 1 at the maximum tree depth."""
+    idata = fit.idata.isel(draw=slice(0, n_draws))
+    post = idata.posterior
+    in_chain1 = xr.DataArray([0.0, 1.0], dims="chain", coords={"chain": post["chain"]})
+    is_x1 = xr.DataArray([1.0, 0.0], dims="attribute", coords={"attribute": post["attribute"]})
+    sd_x1 = float(post["taste_mean"].sel(attribute="x1").std())
+    new_post = post.assign(
+        taste_mean=post["taste_mean"] + 8 * sd_x1 * in_chain1 * is_x1,
+        person_taste=post["person_taste"] + 3.0 * in_chain1 * is_x1,
+    )
+    stats = idata.sample_stats
+    rng = np.random.default_rng(0)
+    diverging = np.zeros((2, n_draws), dtype=bool)
+    diverging[0, [2, 5, 9, 14, 20]] = True
+    energy = np.linspace(0, 100, n_draws)[None, :] + rng.normal(0, 1, (2, n_draws))
+    depth_hit = np.zeros((2, n_draws), dtype=bool)
+    depth_hit[1, : n_draws // 5] = True
+    new_stats = stats.assign(
+        diverging=(("chain", "draw"), diverging), energy=(("chain", "draw"), energy),
+        maxdepth_reached=(("chain", "draw"), depth_hit),
+    )
+    groups = {g: getattr(idata, g) for g in idata.groups()} | {"posterior": new_post, "sample_stats": new_stats}
+    return ChoiceFit(idata=az.InferenceData(**groups), panel=fit.panel, spec=fit.spec, layout=fit.layout,
+                     info=dict(fit.info))
+
+
+# --------------------------------------------------------------------------- thresholds and kernels
+
+
+def test_thresholds_are_the_published_ones() -> None:
+    assert RHAT_MAX == 1.01  # Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021), Bayesian Analysis 16(2)
+    assert ESS_MIN == 400  # ibid.: bulk and tail ESS > 400 (100 per chain with 4 chains)
+    assert EBFMI_MIN == 0.3  # Betancourt (2017), arXiv:1701.02434
+    assert checks._grade_upper(1.0099, RHAT_MAX, checks.RHAT_FAIL) == "pass"
+    assert checks._grade_upper(1.01, RHAT_MAX, checks.RHAT_FAIL) == "warn"
+    assert checks._grade_upper(1.05, RHAT_MAX, checks.RHAT_FAIL) == "fail"
+    assert checks._grade_lower(400, ESS_MIN, checks.ESS_FAIL) == "pass"
+    assert checks._grade_lower(99.9, ESS_MIN, checks.ESS_FAIL) == "fail"
+    assert checks._grade_upper(float("nan"), RHAT_MAX, checks.RHAT_FAIL) == "warn"
+
+
+@given(st.floats(0.5, 3.0), st.floats(0.5, 3.0))
+def test_rhat_grading_is_monotone(a: float, b: float) -> None:
+    lo, hi = sorted((a, b))
+    rank = {v: i for i, v in enumerate(checks.VERDICTS)}
+    assert rank[checks._grade_upper(lo, RHAT_MAX, checks.RHAT_FAIL)] <= rank[
+        checks._grade_upper(hi, RHAT_MAX, checks.RHAT_FAIL)]
+
+
+def test_population_draws_labels_every_scalar_once() -> None:
+    rng = np.random.default_rng(0)
+    names = ["a", "b", "c"]
+    corr = np.broadcast_to(np.eye(3), (2, 10, 3, 3)).copy()
+    corr[..., 0, 1] = corr[..., 1, 0] = rng.uniform(-0.5, 0.5, (2, 10))
+    post = az.from_dict(posterior={
+        "taste_mean": rng.normal(size=(2, 10, 3)), "taste_corr": corr,
+        "covariate_effect": rng.normal(size=(2, 10, 1, 2)),
+    }, dims={"taste_mean": ["attribute"], "taste_corr": ["random_attribute", "random_attribute_bis"],
+             "covariate_effect": ["covariate", "shifted_attribute"]},
+        coords={"attribute": names, "random_attribute": names, "random_attribute_bis": names,
+                "covariate": ["age"], "shifted_attribute": ["a", "b"]}).posterior
+    da = population_draws(post)
+    assert list(da["parameter"].values) == [
+        "taste_mean[a]", "taste_mean[b]", "taste_mean[c]", "taste_corr[a,b]", "taste_corr[a,c]", "taste_corr[b,c]",
+        "covariate_effect[age,a]", "covariate_effect[age,b]"]  # upper triangle of the correlations only
+    np.testing.assert_array_equal(da.sel(parameter="taste_corr[a,b]").values, corr[..., 0, 1])
+    table = parameter_diagnostics(az.InferenceData(posterior=post))
+    assert np.isnan(table.loc["taste_corr[b,c]", "rhat"])  # constant 0 over all draws: nothing to diagnose
+    assert np.isfinite(table.loc["taste_corr[a,b]", "rhat"])
+
+
+# --------------------------------------------------------------------------- the healthy fit
+
+
+def test_rhat_and_ess_are_arviz_values(healthy: ChoiceFit) -> None:
+    table = parameter_diagnostics(healthy.idata)
+    ref_r = az.rhat(healthy.idata, var_names=["taste_sd"], method="rank")["taste_sd"]  # ArviZ 0.23.4
+    ref_b = az.ess(healthy.idata, var_names=["taste_mean"], method="bulk")["taste_mean"]
+    ref_t = az.ess(healthy.idata, var_names=["taste_mean"], method="tail")["taste_mean"]
+    for name in ("x1", "x2"):
+        assert table.loc[f"taste_sd[{name}]", "rhat"] == pytest.approx(float(ref_r.sel(random_attribute=name)))
+        assert table.loc[f"taste_mean[{name}]", "ess_bulk"] == pytest.approx(float(ref_b.sel(attribute=name)))
+        assert table.loc[f"taste_mean[{name}]", "ess_tail"] == pytest.approx(float(ref_t.sel(attribute=name)))
+
+
+def test_healthy_fit_has_no_failed_check(healthy: ChoiceFit) -> None:
+    records = convergence_checks(healthy)
+    assert {c.check for c in records} >= {"rhat", "ess_bulk", "ess_tail", "divergences", "ebfmi", "tree_depth",
+                                          "person_rhat", "person_ess_bulk"}
+    assert [c for c in records if c.verdict == "fail"] == []
+    for c in records:
+        assert (c.advice == "") == (c.verdict == "pass")  # advice exactly where something is off
+    assert _by(records, "divergences").verdict == "pass"
+    assert _by(records, "ebfmi").verdict == "pass"
+    assert _by(records, "rhat", "taste_mean").value < checks.RHAT_FAIL
+
+
+# --------------------------------------------------------------------------- broken fits
+
+
+def test_broken_fit_fails_the_right_checks(healthy: ChoiceFit) -> None:
+    records = convergence_checks(_broken(healthy))
+    assert overall_verdict(records) == "fail"
+    rhat = _by(records, "rhat", "taste_mean")
+    assert rhat.verdict == "fail" and "taste_mean[x1]" in rhat.detail and "stuck" in rhat.advice
+    ess = _by(records, "ess_bulk", "taste_mean")
+    assert ess.verdict == "fail" and ess.value < checks.ESS_FAIL  # 60 draws in all cannot give 100
+    div = _by(records, "divergences")
+    assert div.verdict == "fail" and div.value == 5 and div.detail == "per chain: 5, 0"
+    assert "target_accept" in div.advice and "parameterization" in div.advice
+    ebfmi = _by(records, "ebfmi")
+    assert ebfmi.verdict == "fail" and ebfmi.value < 0.05
+    depth = _by(records, "tree_depth")
+    assert depth.verdict == "warn" and depth.value == pytest.approx(0.2)
+    person = _by(records, "person_rhat")
+    assert person.verdict == "fail" and ",x1]" in person.detail
+    # the unshifted taste_sd is not blamed for the shifted chain
+    assert "taste_sd" not in rhat.detail
+
+
+def test_low_ess_on_a_taste_sd_advises_more_draws(healthy: ChoiceFit) -> None:
+    post = healthy.idata.posterior
+    sd = post["taste_sd"].sel(random_attribute="x2")
+    # an AR(1) path with autocorrelation 0.995 and the same marginal scale: ESS of a few draws per chain
+    rng = np.random.default_rng(1)
+    path = np.zeros(sd.shape)
+    for t in range(1, sd.shape[1]):
+        path[:, t] = 0.995 * path[:, t - 1] + np.sqrt(1 - 0.995**2) * rng.standard_normal(sd.shape[0])
+    sticky = np.abs(float(sd.mean()) + float(sd.std()) * path)
+    values = post["taste_sd"].values.copy()
+    values[..., list(post["random_attribute"].values).index("x2")] = sticky
+    idata = az.InferenceData(posterior=post.assign(taste_sd=(post["taste_sd"].dims, values)),
+                             sample_stats=healthy.idata.sample_stats)
+    rec = _by(convergence_checks(idata), "ess_bulk", "taste_sd")
+    assert rec.verdict == "fail" and "taste_sd[x2]" in rec.detail
+    assert "draws" in rec.advice and "SD" in rec.advice
+
+
+def test_pymc_names_of_sampler_statistics(healthy: ChoiceFit) -> None:
+    broken = _broken(healthy).idata
+    nutpie_style = {c.check: c for c in sampler_checks(broken)}
+    stats = broken.sample_stats.rename({"depth": "tree_depth", "maxdepth_reached": "reached_max_treedepth"})
+    stats = stats[["diverging", "energy", "tree_depth", "reached_max_treedepth"]]  # what pm.sample stores
+    pymc_style = {c.check: c for c in sampler_checks(az.InferenceData(posterior=broken.posterior,
+                                                                      sample_stats=stats))}
+    for name in ("divergences", "ebfmi", "tree_depth"):
+        assert pymc_style[name].value == pytest.approx(nutpie_style[name].value)
+        assert pymc_style[name].verdict == nutpie_style[name].verdict
+    # with only a depth statistic, saturation is read as depth >= the default maximum (10)
+    depth = stats["tree_depth"].values.copy()
+    depth[0, :3] = checks.MAX_TREE_DEPTH
+    only_depth = stats[["diverging", "energy"]].assign(tree_depth=(("chain", "draw"), depth))
+    rec = _by(sampler_checks(az.InferenceData(posterior=broken.posterior, sample_stats=only_depth)), "tree_depth")
+    assert rec.verdict == "warn" and rec.value == pytest.approx(0.1) and "'tree_depth' >= 10" in rec.detail
+    # without any sampler statistics there is one warning saying so, not a crash
+    (missing,) = sampler_checks(az.InferenceData(posterior=broken.posterior))
+    assert missing.check == "sampler_stats" and missing.verdict == "warn"
+
+
+def test_lognormal_sd_collapse_and_explosion_warn() -> None:
+    sim = hc.simulate_panel([hc.SimAttribute("fare", levels=[1.0, 2.0, 3.0], taste="lognormal", mean=0.0, sd=0.5,
+                                             sign="negative"),
+                             hc.SimAttribute("x", levels=[0.0, 1.0], taste="normal", mean=1.0, sd=0.5)],
+                            n_persons=20, n_tasks=3, seed=1)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    layout = model_layout(panel)
+
+    def at(value: float) -> checks.Check:
+        sd = np.full((2, 20, 2), 0.5)
+        sd[..., 0] = value
+        idata = az.from_dict(posterior={"taste_sd": sd}, dims={"taste_sd": ["random_attribute"]},
+                             coords={"random_attribute": layout.random_names})
+        (rec,) = lognormal_sd_checks(idata, layout)  # only the lognormal attribute is graded
+        return rec
+
+    assert at(0.5).verdict == "pass"
+    collapsed = at(0.01)
+    assert collapsed.verdict == "warn" and "scal" in collapsed.advice and collapsed.subject == "taste_sd[fare]"
+    wide = at(3.0)
+    assert wide.verdict == "warn" and "scaling" in wide.advice
+
+
+# --------------------------------------------------------------------------- the results folder
+
+
+def _pngs_ok(folder: Path, names: list[str]) -> None:
+    for name in names:
+        data = (folder / name).read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 1000, name
+
+
+def test_check_folder_healthy_and_broken(healthy: ChoiceFit, tmp_path: Path,
+                                         capsys: pytest.CaptureFixture[str]) -> None:
+    good_dir = hc.save_fit(healthy, tmp_path / "good")
+    report, code = check_folder(good_dir)
+    assert code == 0 and report["exit_code"] == 0
+    assert json.loads((good_dir / "diagnostics.json").read_text()) == report
+    for rec in report["checks"]:
+        assert {"check", "subject", "value", "threshold", "verdict", "advice"} <= set(rec)
+        assert rec["verdict"] in ("pass", "warn")
+    assert report["predictive"]["hit_rate"]["chance_rate"] == pytest.approx(1 / 3)
+    assert report["predictive"]["hit_rate"]["hit_rate"] > 0.45
+    assert report["loo"]["task"]["n_data_points"] == healthy.panel.n_tasks
+    assert report["loo"]["person"]["n_data_points"] == healthy.panel.n_persons
+    assert set(report["plots"]) == {"rank", "trace", "energy", "pair_mean_sd", "reliability", "ppc_shares"}
+    _pngs_ok(good_dir, list(report["plots"].values()))
+    assert not [p.name for p in good_dir.iterdir() if p.name.startswith(".")]  # no temporary files left
+    text = format_verdict(report)
+    assert "no convergence check failed" in text and "hit rate" in text and "PSIS-LOO (person level)" in text
+
+    bad_dir = hc.save_fit(_broken(healthy), tmp_path / "bad")
+    out = tmp_path / "elsewhere"
+    report, code = check_folder(bad_dir, out=out)
+    assert code == 1 and report["verdict"] == "fail"
+    assert (out / "diagnostics.json").exists() and not (bad_dir / "diagnostics.json").exists()
+    failed = {(r["check"], r["subject"]) for r in report["checks"] if r["verdict"] == "fail"}
+    assert {("rhat", "taste_mean"), ("divergences", "sampler"), ("ebfmi", "sampler")} <= failed
+    text = format_verdict(report)
+    assert "FAIL  divergences sampler" in text and "target_accept" in text and "FAILED" in text
+    assert capsys.readouterr().out == ""  # check_folder prints nothing itself
+
+
+def test_check_folder_on_a_missing_folder(tmp_path: Path) -> None:
+    with pytest.raises(hc.ArchiveError, match="posterior.nc"):
+        check_folder(tmp_path / "nothing")

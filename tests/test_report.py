@@ -1,0 +1,234 @@
+"""The HTML report: self-contained, escaped, verdict first, and honest when convergence is unknown."""
+
+from __future__ import annotations
+
+import json
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import pytest
+
+import hierchoice as hc
+import hierchoice.report as report_module
+from hierchoice import SimAttribute, SpecError
+from hierchoice.report import REPORT_FILE, convergence_status, write_report
+from test_tastes import fake_fit, small_panel
+
+VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
+
+
+class _Collector(HTMLParser):
+    """Every tag and attribute, and whether open and close tags nest properly (html.parser, stdlib)."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.tags: list[tuple[str, dict[str, str | None]]] = []
+        self.stack: list[str] = []
+        self.mismatched: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append((tag, dict(attrs)))
+        if tag not in VOID:
+            self.stack.append(tag)
+
+    def handle_endtag(self, tag: str) -> None:
+        if not self.stack or self.stack[-1] != tag:
+            self.mismatched.append(tag)
+        else:
+            self.stack.pop()
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+
+
+def parse(page: str) -> _Collector:
+    parser = _Collector()
+    parser.feed(page)
+    parser.close()
+    return parser
+
+
+def assert_self_contained(page: str) -> _Collector:
+    """The checks of an offline, self-contained page; returns the parse."""
+    doc = parse(page)
+    assert doc.mismatched == [] and doc.stack == [], (doc.mismatched, doc.stack)
+    names = {t for t, _ in doc.tags}
+    assert not names & {"script", "link", "iframe", "object", "embed", "base"}, names
+    for tag, attrs in doc.tags:
+        for key in ("src", "href"):
+            value = attrs.get(key)
+            if value is None:
+                continue
+            if key == "src":
+                assert value.startswith("data:image/png;base64,"), (tag, value[:60])
+            else:
+                assert value.startswith("#"), (tag, value)
+    lowered = page.lower()
+    for needle in ("<script", "@import", "url(", "http://", "https://", "//fonts.", "src=\"http", "href=\"http"):
+        assert needle not in lowered, needle
+    return doc
+
+
+# --------------------------------------------------------------------------- one real fit, hostile names
+
+
+@pytest.fixture(scope="module")
+def hostile(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
+    attrs = [
+        SimAttribute("price", levels=[1.0, 2.0, 3.0, 4.0], taste="lognormal", mean=0.0, sd=0.3, sign="negative"),
+        SimAttribute("<script>", levels=[0.0, 1.0, 2.0], taste="normal", mean=0.6, sd=0.3),
+    ]
+    sim = hc.simulate_panel(attrs, n_persons=60, n_tasks=6, alternatives=("plain", "a&b", "<i>c</i>"), seed=5)
+    sim.spec["model"] = {"price": "price"}
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    result = hc.fit(panel, draws=150, tune=150, chains=2, seed=2, backend="nutpie", progressbar=False)
+    folder = hc.save_fit(result, tmp_path_factory.mktemp("hostile") / "results")
+    market = pd.DataFrame({"option": ["plain", "a&b", "<i>c</i>"], "price": [2.0, 3.0, 2.5],
+                           "<script>": [1.0, 2.0, 0.0]})
+    path = write_report(folder, market=market)
+    return {"folder": folder, "path": path, "page": path.read_text(encoding="utf-8")}
+
+
+def test_report_parses_and_is_self_contained(hostile: dict[str, Any]) -> None:
+    assert hostile["path"] == hostile["folder"] / REPORT_FILE
+    doc = assert_self_contained(hostile["page"])
+    assert any(t == "img" for t, _ in doc.tags)  # plots are there, embedded
+
+
+def test_report_escapes_user_names(hostile: dict[str, Any]) -> None:
+    page = hostile["page"]
+    assert "&lt;script&gt;" in page
+    assert "a&amp;b" in page and "&lt;i&gt;c&lt;/i&gt;" in page
+    assert "<i>c</i>" not in page
+    # the parsed text shows the names as written
+    text = "".join(parse(page).text)
+    assert "<script>" in text and "<i>c</i>" in text
+
+
+def test_report_puts_the_verdict_first_and_marks_provisional_sections(hostile: dict[str, Any]) -> None:
+    page = hostile["page"]
+    status = convergence_status(hostile["folder"])
+    assert status["verdict"] in ("pass", "warn", "fail")  # the real checks ran and wrote diagnostics.json
+    assert (hostile["folder"] / "diagnostics.json").exists()
+    first_section = page.index("<section")
+    assert page.index("class='verdict") < first_section
+    for anchor in ("convergence", "job", "model", "tastes", "wtp", "individual", "fit", "scenario", "cautions"):
+        assert f"<section id='{anchor}'>" in page
+    tastes = page[page.index("<section id='tastes'>"):page.index("<section id='wtp'>")]
+    assert ("provisional" in tastes) == (status["verdict"] == "fail")
+    for caution in ("not a forecast guarantee", "conditional on the model", "outside the ranges of the design",
+                    "Check convergence before reading any result"):
+        assert caution in page
+
+
+def test_report_writes_the_csv_tables(hostile: dict[str, Any]) -> None:
+    folder = hostile["folder"]
+    for name in ("population_tastes.csv", "person_tastes.csv", "wtp.csv", "person_wtp.csv", "shares.csv"):
+        assert (folder / name).is_file(), name
+    pop = pd.read_csv(folder / "population_tastes.csv")
+    assert "<script>" in set(pop["attribute"])
+    shares = pd.read_csv(folder / "shares.csv")
+    assert set(shares["persons"]) == {"population", "panel"}
+    assert shares.groupby("persons")["mean"].sum().to_numpy() == pytest.approx([1.0, 1.0])
+    persons = pd.read_csv(folder / "person_tastes.csv")
+    assert len(persons) == 60 * 2
+
+
+# --------------------------------------------------------------------------- convergence unknown or failed (fake fits)
+
+
+@pytest.fixture
+def fake_folder(tmp_path: Path) -> Path:
+    panel = small_panel(model={"price": "price"})
+    fit = fake_fit(panel, {"price": 0.0, "time": -0.05}, {"price": 0.3, "time": 0.02}, spread=0.01)
+    return hc.save_fit(fit, tmp_path / "results")
+
+
+def _sections_after_job(page: str) -> list[str]:
+    out = []
+    for anchor in ("tastes", "wtp", "individual", "fit"):
+        start = page.index(f"<section id='{anchor}'>")
+        out.append(page[start:page.index("</h2>", start)])
+    return out
+
+
+def test_failing_checks_module_gives_not_checked(fake_folder: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import hierchoice.checks
+
+    def broken(folder: Any, *, out: Any = None) -> Any:
+        raise RuntimeError("disk on fire")
+
+    monkeypatch.setattr(hierchoice.checks, "check_folder", broken)
+    page = write_report(fake_folder).read_text(encoding="utf-8")
+    assert_self_contained(page)
+    banner = page[page.index("class='verdict"):page.index("<section")]
+    assert "Convergence: not checked" in banner and "disk on fire" in banner
+    assert all("provisional" in head for head in _sections_after_job(page))
+
+
+def test_missing_checks_module_gives_not_checked(fake_folder: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setitem(sys.modules, "hierchoice.checks", None)  # import now raises ImportError
+    status = convergence_status(fake_folder)
+    assert status["verdict"] == "not checked" and "not available" in status["reason"]
+    page = write_report(fake_folder).read_text(encoding="utf-8")
+    assert page.index("Convergence: not checked") < page.index("<section")
+
+
+def _diagnostics(folder: Path, verdict: str, **fit: Any) -> None:
+    info = hc.load_fit(folder).info | fit
+    checks = [{"check": "rhat", "subject": "taste_sd[time]", "value": 1.2, "threshold": 1.01,
+               "rule": "value < 1.01", "verdict": verdict, "advice": "Run longer <and> check the trace plots."}]
+    (folder / "diagnostics.json").write_text(json.dumps({"verdict": verdict, "checks": checks, "fit": info,
+                                                         "holdout": [{"model": "mixed", "hit_rate": 0.61}]}))
+
+
+def test_failed_verdict_is_prominent(fake_folder: Path) -> None:
+    _diagnostics(fake_folder, "fail")
+    page = write_report(fake_folder).read_text(encoding="utf-8")
+    banner = page[page.index("class='verdict"):page.index("<section")]
+    assert "NOT converged" in banner and "provisional" in banner
+    assert "Run longer &lt;and&gt; check the trace plots." in banner
+    assert all("provisional" in head for head in _sections_after_job(page))
+    assert "Holdout tasks" in page and "0.61" in page
+
+
+def test_passing_verdict_and_stale_diagnostics(fake_folder: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    _diagnostics(fake_folder, "pass")
+    page = write_report(fake_folder).read_text(encoding="utf-8")
+    assert "Convergence: Converged" in page and not any("provisional" in h for h in _sections_after_job(page))
+    # a diagnostics.json from another fit is not trusted: the checks run again
+    _diagnostics(fake_folder, "pass", wall_seconds=123.0)
+    calls = []
+    import hierchoice.checks
+
+    def fake_check(folder: Any, *, out: Any = None) -> Any:
+        calls.append(folder)
+        return {"verdict": "warn", "checks": []}, 0
+
+    monkeypatch.setattr(hierchoice.checks, "check_folder", fake_check)
+    assert convergence_status(fake_folder, hc.load_fit(fake_folder))["verdict"] == "warn" and calls
+
+
+def test_report_without_price_or_person_draws(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setitem(sys.modules, "hierchoice.checks", None)
+    fit = fake_fit(small_panel(), {"price": 0.0, "time": -0.05}, {"price": 0.3, "time": 0.02},
+                   person_draws=False)
+    folder = hc.save_fit(fit, tmp_path / "results")
+    page = write_report(folder).read_text(encoding="utf-8")
+    assert_self_contained(page)
+    assert "No price attribute is named" in page and "kept no person draws" in page
+    assert not (folder / "wtp.csv").exists() and not (folder / "person_tastes.csv").exists()
+    assert (folder / "population_tastes.csv").exists()
+    with pytest.raises(SpecError, match="prob"):
+        write_report(folder, prob=90)
+
+
+def test_report_module_numbers_are_readable() -> None:
+    assert report_module._num(-0.05123) == "-0.0512" and report_module._num(2.5) == "2.5"
+    assert report_module._num(1234.4) == "1,234" and report_module._num(3e-6) == "3.00e-06"
+    assert report_module._num(float("nan")) == "–" and report_module._pct(0.4567) == "45.7 %"
+    assert report_module._mpl_text("$x$") == r"\$x\$"
