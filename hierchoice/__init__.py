@@ -11,6 +11,13 @@ from .panel import ChoicePanel, Term, ValidationSummary, load_panel, long_to_wid
 from .fit import ChoiceFit, fit, population_summary, task_log_likelihood
 from .archive import load_fit, save_fit
 from .model import build_model, model_layout
+from .checks import check_folder, convergence_checks, format_verdict
+from .compare import compare_models, person_loo, task_loo
+from .predictive import hit_rate, holdout_validation, ppc_shares, prior_predictive
+from .tastes import person_tastes, population_tastes
+from .wtp import person_wtp, population_wtp
+from .shares import compare_shares, elasticities, predict_shares, sensitivity
+from .report import write_report
 from .simulate import SimAttribute, SimulatedPanel, benchmark_scenario, ferry_scenario, simulate_panel
 from .spec import Spec, load_spec
 
@@ -19,6 +26,25 @@ __version__ = "0.1.0"
 __all__ = [
     "ArchiveError",
     "ChoiceFit",
+    "check_folder",
+    "compare_models",
+    "compare_shares",
+    "convergence_checks",
+    "elasticities",
+    "format_verdict",
+    "hit_rate",
+    "holdout_validation",
+    "person_loo",
+    "person_tastes",
+    "person_wtp",
+    "population_tastes",
+    "population_wtp",
+    "ppc_shares",
+    "predict_shares",
+    "prior_predictive",
+    "sensitivity",
+    "task_loo",
+    "write_report",
     "build_model",
     "fit",
     "load_fit",

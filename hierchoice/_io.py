@@ -11,7 +11,18 @@ from pathlib import Path
 
 from .exceptions import ArchiveError
 
-__all__ = ["atomic_write_text", "atomic_dir"]
+__all__ = ["atomic_write_text", "atomic_dir", "write_with"]
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def _share(path: Path, mode: int = 0o666) -> None:
+    """mkstemp/mkdtemp create private files and folders; results are meant to be shared."""
+    os.chmod(path, mode & ~_umask())
 
 
 def atomic_write_text(path: str | Path, text: str) -> Path:
@@ -22,6 +33,7 @@ def atomic_write_text(path: str | Path, text: str) -> Path:
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
+        _share(Path(tmp))
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -49,6 +61,7 @@ def atomic_dir(target: str | Path, *, overwrite: bool = True) -> Iterator[Path]:
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+    _share(tmp, 0o777)
     old = None
     if target.exists():
         old = target.with_name(f".{target.name}.old-{os.getpid()}")
@@ -67,6 +80,7 @@ def write_with(path: str | Path, writer: Callable[[Path], None]) -> Path:
     os.close(fd)
     try:
         writer(Path(tmp))
+        _share(Path(tmp))
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

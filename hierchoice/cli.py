@@ -42,6 +42,35 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_check(args: argparse.Namespace) -> int:
+    from .checks import check_folder, format_verdict
+
+    report, code = check_folder(Path(args.folder))
+    print(format_verdict(report))
+    print(f"\nwrote {Path(args.folder) / 'diagnostics.json'} and the diagnostic plots")
+    return code
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from .report import write_report
+
+    path = write_report(Path(args.folder), market=args.market, prob=args.prob)
+    print(f"report: {path}")
+    return 0
+
+
+def _cmd_shares(args: argparse.Namespace) -> int:
+    from .shares import shares_command
+
+    table = shares_command(args.folder, args.market, args.out, persons=args.persons, prob=args.prob)
+    print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    for record in table.attrs.get("warnings", []):
+        print(f"warning: {record.message}", file=sys.stderr)
+    if args.out:
+        print(f"\nwrote {args.out}")
+    return 0
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
 
@@ -74,6 +103,25 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--approximate", action="store_true",
                    help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
     p.set_defaults(func=_cmd_fit)
+
+    p = sub.add_parser("check", help="convergence verdict, predictive checks and LOO of a results folder")
+    p.add_argument("folder", help="a results folder written by 'hierchoice fit'")
+    p.set_defaults(func=_cmd_check)
+
+    p = sub.add_parser("report", help="write the self-contained HTML report (and CSV tables) of a results folder")
+    p.add_argument("folder", help="a results folder written by 'hierchoice fit'")
+    p.add_argument("--market", help="optional market CSV: one row per alternative, for scenario shares")
+    p.add_argument("--prob", type=float, default=0.9, help="credible interval probability (default 0.9)")
+    p.set_defaults(func=_cmd_report)
+
+    p = sub.add_parser("shares", help="predicted market shares with credible intervals for a market table")
+    p.add_argument("folder", help="a results folder written by 'hierchoice fit'")
+    p.add_argument("--market", required=True, help="market CSV: one row per alternative with attribute values")
+    p.add_argument("--out", help="write the share table to this CSV")
+    p.add_argument("--persons", choices=["population", "panel"], default="population",
+                   help="new persons from the population distribution (default) or the fitted panel's persons")
+    p.add_argument("--prob", type=float, default=0.9, help="credible interval probability (default 0.9)")
+    p.set_defaults(func=_cmd_shares)
 
     p = sub.add_parser("demo", help="run the whole job on the invented Harbourline ferry survey")
     p.add_argument("--out", default="hierchoice-demo", help="output folder (default: hierchoice-demo)")

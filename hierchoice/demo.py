@@ -26,11 +26,37 @@ def write_demo_data(out: Path, *, persons: int = 300, seed: int = 7) -> tuple[Pa
     return data_path, spec_path
 
 
+DEMO_MARKET = """option,fare,crossing_time,departures_per_hour,deck
+ferry_a,3.5,20,4,covered
+ferry_b,5.0,15,2,lounge
+none,,,,
+"""
+
+
 def run_demo(out: Path, *, persons: int = 300, quick: bool = False, seed: int = 7) -> Path:
-    """Simulate, validate and (later stages) fit, check and report the demo; return ``out``."""
+    """The whole job on the demo: simulate, validate, fit, check, report. Returns the report's path."""
+    from .archive import save_fit
+    from .checks import check_folder, format_verdict
+    from .fit import fit
+    from .report import write_report
+
+    out = Path(out)
     data_path, spec_path = write_demo_data(out, persons=persons, seed=seed)
+    market_path = atomic_write_text(out / "harbourline_market.csv", DEMO_MARKET)
     spec = Spec.from_toml(spec_path)
     panel = ChoicePanel.from_file(data_path, spec)
-    print(f"demo data: {data_path}\ndemo spec: {spec_path}")
-    print(panel.summary)
-    return out
+    print(f"1/4 validated {data_path}\n{panel.summary}\n", flush=True)
+    draws = dict(draws=60, tune=60) if quick else {}
+    print("2/4 fitting the hierarchical logit with NUTS (draws and chains from the spec)...", flush=True)
+    result = fit(panel, spec, progressbar=False, **draws)
+    results = save_fit(result, out / "results")
+    print(f"    {result!r} in {result.info['wall_seconds']:.0f} s -> {results}/\n", flush=True)
+    print("3/4 checking convergence and predictions...", flush=True)
+    report, code = check_folder(results)
+    print(format_verdict(report) + "\n", flush=True)
+    print("4/4 writing the report...", flush=True)
+    path = write_report(results, market=market_path)
+    print(f"\nreport: {path}")
+    if quick:
+        print("(--quick: a smoke run with very few draws; do not read its numbers)")
+    return path

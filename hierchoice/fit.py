@@ -202,6 +202,7 @@ def fit(
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
                               target_accept=target_accept, cores=cores)
     s = spec.sampling
+    panel = panel.with_spec(spec)  # the spec's tastes, not those the panel was validated with
     chosen_backend = resolve_backend(s.backend)
     layout = model_layout(panel, spec)
     t0 = time.perf_counter()

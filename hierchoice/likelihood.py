@@ -22,6 +22,7 @@ gradients. Unavailable alternatives and padded tasks contribute exactly nothing.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -68,6 +69,14 @@ def difference_data(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray,
 
 
 def _stable_task_loglik(delta, mask, xp):  # type: ignore[no-untyped-def]
+    if xp is np:
+        # numpy reduces slowly over a short last axis: loop over the (few) other alternatives instead
+        cols = [delta[..., j] for j in range(delta.shape[-1])]
+        m = np.maximum(functools.reduce(np.maximum, cols), 0.0)
+        total = np.exp(-m)
+        for j, c in enumerate(cols):
+            total += mask[..., j] * np.exp(c - m)
+        return -(m + np.log(total))
     # masked entries of delta are exactly 0 (their differences are zeroed), so they
     # never raise m above max(0, max over available); the mask removes their terms.
     m = xp.maximum(xp.max(delta, axis=-1, keepdims=True), 0.0)
@@ -160,7 +169,8 @@ def choice_probabilities(X: np.ndarray, available: np.ndarray, beta: np.ndarray)
     """
     u = np.einsum("ptjk,...pk->...ptj", X, beta)
     u = np.where(available, u, -np.inf)
-    u = u - np.max(u, axis=-1, keepdims=True, initial=-np.inf, where=available)
+    with np.errstate(invalid="ignore"):  # padded tasks: -inf - -inf, masked below
+        u = u - np.max(u, axis=-1, keepdims=True, initial=-np.inf, where=available)
     e = np.where(available, np.exp(u), 0.0)
     total = e.sum(axis=-1, keepdims=True)
     return np.divide(e, total, out=np.zeros_like(e), where=total > 0)

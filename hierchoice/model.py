@@ -134,6 +134,7 @@ class ModelLayout:
 def model_layout(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None) -> ModelLayout:
     """Decide the internal scaling and the taste layout of ``panel`` under ``spec``."""
     spec = panel.spec if spec is None else load_spec(spec)
+    panel = panel.with_spec(spec)
     terms = panel.terms
     names = [t.name for t in terms]
     avail = panel.available & panel.task_mask[:, :, None]
@@ -257,6 +258,7 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
     import pytensor.tensor as pt
 
     spec = panel.spec if spec is None else load_spec(spec)
+    panel = panel.with_spec(spec)
     layout = model_layout(panel, spec)
     data = _difference_data(panel, layout)
     names = layout.names

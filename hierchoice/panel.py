@@ -350,6 +350,53 @@ class ChoicePanel:
             out[name] = self.X[p, t, j, k]
         return out
 
+    def with_spec(self, spec: Spec | Mapping[str, Any] | str | Path) -> ChoicePanel:
+        """The same data under another spec that changes only tastes and model/sampling options.
+
+        Each term takes its taste (and sign) from the new spec. A spec that would
+        read the data differently (columns, attributes, coding, constants'
+        reference, dynamics, covariates, data options) needs the table validated
+        again: that is a :class:`~hierchoice.exceptions.SpecError`.
+        """
+        from dataclasses import replace as _replace
+
+        from .exceptions import SpecError
+
+        spec = load_spec(spec)
+        if spec == self.spec:
+            return self
+        old = self.spec
+
+        def reading(sp: Spec) -> tuple[Any, ...]:
+            attrs = tuple((a.name, a.coding, a.base, a.source) for a in sp.attributes.values())
+            dyn = (sp.dynamics.lagged_choice, sp.dynamics.lag, sp.dynamics.lead, sp.dynamics.first_task,
+                   sp.dynamics.initial_conditions, sp.dynamics.initial_means)
+            ref = sp.constants.reference if sp.constants else None
+            cov = sp.covariates.columns if sp.covariates else None
+            return sp.columns, attrs, ref, dyn, cov, sp.data, sp.wide
+
+        if reading(spec) != reading(old):
+            raise SpecError(
+                "This spec reads the data differently from the one the panel was validated with (columns, "
+                "attributes, coding, constants, dynamics, covariates or [data]); validate the table again with it."
+            )
+        terms = []
+        for term in self.terms:
+            if term.kind == "constant":
+                taste, sign = spec.constants.taste if spec.constants else term.taste, None
+            elif term.source in spec.attributes and term.kind in ("numeric", "dummy", "effects"):
+                taste, sign = spec.attributes[term.source].taste, spec.attributes[term.source].sign
+            elif term.name in spec.attributes:
+                taste, sign = spec.attributes[term.name].taste, spec.attributes[term.name].sign
+            else:  # lag, lead, lagged choice without their own [attributes] table
+                taste, sign = spec.dynamics.taste, None
+            terms.append(_replace(term, taste=taste, sign=sign))
+        return ChoicePanel(
+            X=self.X, available=self.available, task_mask=self.task_mask, chosen=self.chosen,
+            task_ids=self.task_ids, lag_missing=self.lag_missing, Z=self.Z, persons=self.persons,
+            alternatives=self.alternatives, terms=terms, covariates=self.covariates, summary=self.summary, spec=spec,
+        )
+
     def with_tasks(self, keep: np.ndarray, reason: str) -> ChoicePanel:
         """A panel with only the tasks where ``keep`` (person, task) is true, counted under ``reason``.
 

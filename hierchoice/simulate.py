@@ -309,15 +309,15 @@ def ferry_scenario(
                      sd=0.5, sign="negative"),
         SimAttribute("crossing_time", levels=[15.0, 20.0, 25.0, 30.0, 40.0], taste="normal", mean=-0.06, sd=0.03),
         SimAttribute("departures_per_hour", levels=[1.0, 2.0, 4.0, 6.0], taste="normal", mean=0.3, sd=0.2),
-        SimAttribute("deck", levels=["open", "covered", "lounge"], taste="normal", mean=[0.4, 0.7], sd=[0.3, 0.5],
-                     categorical=True),
+        # the deck is valued alike by everyone: a fixed taste (SDs of dummy tastes need many tasks to identify)
+        SimAttribute("deck", levels=["open", "covered", "lounge"], taste="fixed", mean=[0.4, 0.7], categorical=True),
     ]
     sim = simulate_panel(
         attributes, n_persons=n_persons, n_tasks=n_tasks, alternatives=("ferry_a", "ferry_b"), opt_out="none",
         constants={"ferry_a": 2.0, "ferry_b": 2.0}, correlation=(0.3 if correlated else None), seed=seed,
     )
     sim.spec["model"] = sim.spec.get("model", {}) | {"price": "fare"}
-    sim.spec["sampling"] = {"chains": 2, "draws": 500, "tune": 500}
+    sim.spec["sampling"] = {"chains": 2, "draws": 1000, "tune": 1000}
     return sim
 
 

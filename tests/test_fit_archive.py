@@ -131,3 +131,16 @@ def test_approximate_path_is_flagged_and_close_to_nuts():
     rows = [r for r in n.index if r.startswith("taste_mean")]
     z = ((a.loc[rows, "mean"] - n.loc[rows, "mean"]) / n.loc[rows, "sd"]).abs()
     assert (z < 2).all(), z
+
+
+def test_a_spec_with_other_tastes_is_what_gets_fitted(small):
+    _, panel, _ = small
+    table = panel.spec.to_dict()
+    table["attributes"]["crossing_time"] = {"taste": "fixed"}
+    other = hc.Spec.from_dict(table)
+    model = hc.build_model(panel, other)
+    assert "crossing_time" not in list(model.coords["random_attribute"])
+    # a spec that reads the data differently needs the table validated again
+    table["attributes"]["deck"] = {"taste": "normal", "coding": "effects", "base": "open"}
+    with pytest.raises(hc.SpecError, match="validate the table again"):
+        hc.build_model(panel, hc.Spec.from_dict(table))
