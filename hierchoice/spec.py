@@ -404,8 +404,8 @@ class ModelOptions:
         _check_keys(table, {"correlated", "parameterization", "wtp_space", "price", "prior_scale"}, "model")
         price = table.get("price")
         scale = table.get("prior_scale", 1.0)
-        if isinstance(scale, bool) or not isinstance(scale, (int, float)) or not scale > 0:
-            raise SpecError(f"model.prior_scale must be a positive number, got {scale!r}.")
+        if isinstance(scale, bool) or not isinstance(scale, (int, float)) or not 0 < scale < float("inf"):
+            raise SpecError(f"model.prior_scale must be a finite positive number, got {scale!r}.")
         out = cls(
             correlated=_bool(table.get("correlated", False), "model.correlated"),
             parameterization=_choice(

@@ -225,6 +225,7 @@ BAD_SPECS: list[tuple[str, dict[str, Any], str]] = [
      "numeric"),
     ("bad parameterization", minimal(model={"parameterization": "centered"}), "Did you mean 'centred'"),
     ("prior_scale zero", minimal(model={"prior_scale": 0}), "model.prior_scale"),
+    ("prior_scale infinite", minimal(model={"prior_scale": float("inf")}), "model.prior_scale"),
     ("prior_scale bool", minimal(model={"prior_scale": True}), "model.prior_scale"),
     ("chains zero", minimal(sampling={"chains": 0}), "sampling.chains"),
     ("draws text", minimal(sampling={"draws": "1000"}), "sampling.draws"),
