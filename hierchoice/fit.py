@@ -137,7 +137,7 @@ def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, v
         return sample_numpyro_nuts(
             draws=draws, tune=tune, chains=chains, random_seed=seed, target_accept=target_accept,
             var_names=var_names, progressbar=progressbar, chain_method="sequential" if cores == 1 else "parallel",
-            idata_kwargs={"log_likelihood": False},
+            idata_kwargs={"log_likelihood": False}, compute_convergence_checks=False,
         )
 
 

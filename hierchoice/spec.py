@@ -432,7 +432,7 @@ class SamplingOptions:
     backend: str = "auto"
     store_person_draws: bool = True
     cores: int | None = None
-    mass_matrix: str = "low_rank"
+    mass_matrix: str = "diagonal"
 
     @classmethod
     def from_dict(cls, table: Mapping[str, Any]) -> SamplingOptions:
@@ -455,7 +455,7 @@ class SamplingOptions:
             backend=_choice(table.get("backend", "auto"), BACKENDS, "sampling.backend"),
             store_person_draws=_bool(table.get("store_person_draws", True), "sampling.store_person_draws"),
             cores=None if cores is None else _positive_int(cores, "sampling.cores"),
-            mass_matrix=_choice(table.get("mass_matrix", "low_rank"), ("diagonal", "low_rank"),
+            mass_matrix=_choice(table.get("mass_matrix", "diagonal"), ("diagonal", "low_rank"),
                                 "sampling.mass_matrix"),
         )
 

@@ -144,3 +144,24 @@ def test_a_spec_with_other_tastes_is_what_gets_fitted(small):
     table["attributes"]["deck"] = {"taste": "normal", "coding": "effects", "base": "open"}
     with pytest.raises(hc.SpecError, match="validate the table again"):
         hc.build_model(panel, hc.Spec.from_dict(table))
+
+
+def test_numpyro_backend_runs_on_the_cpu():
+    pytest.importorskip("jax", reason="the JAX backend is optional: pip install 'hierchoice[jax]'")
+    sim = hc.benchmark_scenario(60, 5, 3, 2, seed=3)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    result = hc.fit(panel, draws=100, tune=100, chains=2, backend="numpyro", progressbar=False)
+    assert result.info["backend"] == "numpyro"
+    assert result.posterior["person_taste"].shape[:2] == (2, 100)
+    assert np.isfinite(result.population()["mean"]).all()
+
+
+def test_missing_backend_is_a_clean_error(monkeypatch):
+    import importlib.util
+
+    from hierchoice.fit import resolve_backend
+
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "numpyro" else real(name, *a))
+    with pytest.raises(hc.FitError, match="pip install"):
+        resolve_backend("numpyro")
