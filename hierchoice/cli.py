@@ -71,6 +71,12 @@ def _cmd_shares(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    from .calibrate import calibrate_command
+
+    return calibrate_command(args.data, args.spec, args.fits, args.out, args.workers, args.seed)
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
 
@@ -122,6 +128,15 @@ def build_parser() -> argparse.ArgumentParser:
                    help="new persons from the population distribution (default) or the fitted panel's persons")
     p.add_argument("--prob", type=float, default=0.9, help="credible interval probability (default 0.9)")
     p.set_defaults(func=_cmd_shares)
+
+    p = sub.add_parser("calibrate", help="simulation-based calibration of a spec on your own design (many fits)")
+    p.add_argument("data", help="the choice table whose design (attributes, tasks) is reused")
+    p.add_argument("--spec", required=True, help="the TOML spec")
+    p.add_argument("--fits", type=int, default=100, help="number of simulate-and-fit replications (default 100)")
+    p.add_argument("--out", default="calibration", help="output folder (default: calibration)")
+    p.add_argument("--workers", type=int, help="local Dask workers (default: one per core)")
+    p.add_argument("--seed", type=int, help="base seed (default: the spec's sampling.seed)")
+    p.set_defaults(func=_cmd_calibrate)
 
     p = sub.add_parser("demo", help="run the whole job on the invented Harbourline ferry survey")
     p.add_argument("--out", default="hierchoice-demo", help="output folder (default: hierchoice-demo)")
