@@ -5,6 +5,9 @@ import logging as _logging
 # PyTensor warns at import when it links BLAS through NumPy (pip installs); the
 # message is about speed, not correctness, and would be the first thing users see.
 _logging.getLogger("pytensor.tensor.blas").setLevel(_logging.ERROR)
+import warnings as _warnings
+
+_warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS installation", category=UserWarning)
 
 from .exceptions import ArchiveError, DataError, FitError, HierchoiceError, SpecError
 from .panel import ChoicePanel, Term, ValidationSummary, load_panel, long_to_wide, read_table, wide_to_long

@@ -348,7 +348,7 @@ def rank_uniformity(ranks: xr.DataArray, thin_to: int, *, alpha: float = 0.01, b
         Over ``parameter``: ``chi2_statistic``, ``chi2_pvalue``
         (:func:`scipy.stats.chisquare` on the binned ranks), ``ecdf_outside`` (the
         ECDF leaves the simultaneous band somewhere), ``ecdf_max_deviation``
-        (largest |ECDF - uniform|), ``flagged`` (either test rejects); over
+        (largest ``|ECDF - uniform|``), ``flagged`` (either test rejects); over
         ``ecdf_point``: ``ecdf_lower``, ``ecdf_upper`` (the band) with coordinate
         ``z``; attributes ``alpha``, ``chi2_bins``, ``fits_tested``.
     """

@@ -89,6 +89,9 @@ def build_parser() -> argparse.ArgumentParser:
         prog="hierchoice",
         description="Bayesian hierarchical choice models for panel choice data.",
     )
+    from . import __version__
+
+    parser.add_argument("--version", action="version", version=f"hierchoice {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
 
     p = sub.add_parser("validate", help="load and check a choice table against a spec; print a summary")

@@ -41,6 +41,9 @@ def run_demo(out: Path, *, persons: int = 300, quick: bool = False, seed: int = 
     from .report import write_report
 
     out = Path(out)
+    if quick:
+        print("--quick: a smoke run with very few draws. Expect the convergence check to FAIL; do not read its "
+              "numbers. Run without --quick for a real fit.\n", flush=True)
     data_path, spec_path = write_demo_data(out, persons=persons, seed=seed)
     market_path = atomic_write_text(out / "harbourline_market.csv", DEMO_MARKET)
     spec = Spec.from_toml(spec_path)

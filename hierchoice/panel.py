@@ -7,14 +7,14 @@ that names the column and the first persons, tasks or rows at fault), codes
 categorical attributes and constants, adds lag / lead / lagged-choice columns,
 and pads everything to dense arrays:
 
-============  ==========================  =====================================
-array         shape                       meaning
-============  ==========================  =====================================
-``X``         (person, task, alt, attr)   attribute values, 0 where padded
-``available`` (person, task, alt)         alternative offered in that task
-``task_mask`` (person, task)              the task exists (panels are unbalanced)
-``chosen``    (person, task)              index of the chosen alternative, -1 if padded
-============  ==========================  =====================================
+=============  =========================  =============================================
+array          shape                      meaning
+=============  =========================  =============================================
+``X``          (person, task, alt, attr)  attribute values, 0 where padded
+``available``  (person, task, alt)        alternative offered in that task
+``task_mask``  (person, task)             the task exists (panels are unbalanced)
+``chosen``     (person, task)             index of the chosen alternative, -1 if padded
+=============  =========================  =============================================
 
 Nothing is dropped silently: every removed task and every filled cell is
 counted in :attr:`ChoicePanel.summary`.

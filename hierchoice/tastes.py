@@ -309,8 +309,7 @@ def population_tastes(
         ``population_mean`` / ``population_sd``
             The posterior of the taste distribution's parameters :math:`\\mu_k,
             \\sigma_k` (``scale`` says whether of the coefficient or of its log).
-        ``mean_across_people``, ``median_across_people``, ``sd_across_people``,
-        ``p10_across_people``, ..., ``share_positive``
+        ``mean_across_people``, ``median_across_people``, ``sd_across_people``, ``p10_across_people``, ..., ``share_positive``
             The implied distribution of the coefficient across people.
         ``correlation``
             Between the random tastes ``attribute`` and ``other``.

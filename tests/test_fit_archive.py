@@ -109,7 +109,10 @@ def test_fit_command_bad_backend_option_is_a_clean_error(tmp_path, capsys):
     from hierchoice.demo import write_demo_data
 
     data, spec = write_demo_data(tmp_path, persons=10, seed=3)
-    text = spec.read_text().replace("draws = 500", "draws = -1")
+    import re
+
+    text = re.sub(r"(?m)^draws = \d+$", "draws = -1", spec.read_text())
+    assert "draws = -1" in text
     spec.write_text(text)
     code = main(["fit", str(data), "--spec", str(spec), "--out", str(tmp_path / "res")])
     assert code == 2

@@ -24,9 +24,10 @@ def test_ferry_scenario_shapes_and_spec() -> None:
     truth = sim.truth
     assert list(truth["person_taste"].columns) == list(panel.attributes)
     assert truth["person_taste"].shape == (40, 7)
-    assert list(truth["taste_sd"].index) == ["fare", "crossing_time", "departures_per_hour", "deck:covered",
-                                             "deck:lounge"]
-    assert truth["taste_corr"].shape == (5, 5)
+    # the deck's tastes are fixed in the demo: only fare, time and frequency vary across people
+    assert list(truth["taste_sd"].index) == ["fare", "crossing_time", "departures_per_hour"]
+    assert truth["taste_corr"].shape == (3, 3)
+    assert (truth["person_taste"]["deck:lounge"] == truth["taste_mean"]["deck:lounge"]).all()
     assert truth["tastes"]["fare"] == "lognormal" and truth["tastes"]["asc:ferry_a"] == "fixed"
     # lognormal negative fare: every person's coefficient is negative
     assert (truth["person_taste"]["fare"] < 0).all()
