@@ -27,18 +27,7 @@ def _share(path: Path, mode: int = 0o666) -> None:
 
 def atomic_write_text(path: str | Path, text: str) -> Path:
     """Write ``text`` to ``path`` through a temporary file in the same folder, then rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        _share(Path(tmp))
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
+    return write_with(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))
 
 
 @contextmanager
