@@ -231,7 +231,34 @@ def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> DifferenceData:
     return difference_data(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
 
 
-def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None):  # type: ignore[no-untyped-def]
+def _into_columns(values, columns: tuple[int, ...] | list[int], n_columns: int):  # type: ignore[no-untyped-def]
+    """Place (person, len(columns)) ``values`` in ``columns`` of a (person, n_columns) matrix, zeros elsewhere."""
+    import pytensor.tensor as pt
+
+    if list(columns) == list(range(n_columns)):
+        return values
+    select = np.zeros((len(columns), n_columns))
+    select[np.arange(len(columns)), list(columns)] = 1.0
+    return pt.dot(values, pt.constant(select))
+
+
+def _panel_loglik(data: DifferenceData, beta, likelihood: str):  # type: ignore[no-untyped-def]
+    """The scalar panel log-likelihood of the (person, attribute) tastes ``beta``."""
+    if likelihood == "graph":
+        return task_loglik_graph(data, [beta[:, k] for k in range(data.D.shape[0])]).sum()
+    import pytensor
+
+    from .logit_op import op_layout, panel_logit_loglik
+
+    D, mask = op_layout(data)
+    # shared, not constants: compiled code then neither embeds the data nor depends on it for caching
+    D = pytensor.shared(D, name="panel_differences", borrow=True)
+    mask = pytensor.shared(mask, name="panel_available", borrow=True)
+    return panel_logit_loglik(beta, D, mask)
+
+
+def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None, *,  # type: ignore[no-untyped-def]
+                likelihood: str = "fused"):
     r"""Build the panel mixed logit of ``panel`` under ``spec`` as a :class:`pymc.Model`.
 
     A pure function: it reads the panel and the spec and samples nothing.
@@ -241,6 +268,13 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
     panel : ChoicePanel
     spec : Spec, mapping or path, optional
         Defaults to the spec the panel was validated with.
+    likelihood : {"fused", "graph"}, default "fused"
+        ``"fused"`` computes the panel log-likelihood and its gradient in one pass
+        (:class:`hierchoice.logit_op.PanelLogitLoglik`, with its data as shared
+        variables so compiled code does not embed it); ``"graph"`` writes it as a
+        plain PyTensor graph (:func:`hierchoice.likelihood.task_loglik_graph`). Both
+        give the same log-posterior to rounding; ``"graph"`` is the reference the
+        fused Op is tested against.
 
     Returns
     -------
@@ -257,6 +291,8 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
     import pymc as pm
     import pytensor.tensor as pt
 
+    if likelihood not in ("fused", "graph"):
+        raise SpecError(f"likelihood must be 'fused' or 'graph', got {likelihood!r}.")
     spec = panel.spec if spec is None else load_spec(spec)
     panel = panel.with_spec(spec)
     layout = model_layout(panel, spec)
@@ -282,14 +318,14 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
     with pm.Model(coords=coords) as model:
         mu_free = pm.Normal("mu_std", 0.0, mean_sd * ps, dims="attribute")
         mu = _centred_constants(mu_free, layout) if layout.constant_centre is not None else mu_free
-        theta: list[Any] = [mu[k] for k in range(n_k)]  # per-attribute latent (scalar or (person,))
+        # theta: the (person, attribute) latent tastes, one vectorised expression (a (1, attribute)
+        # row while nothing varies by person); lognormal columns are exponentiated below
+        theta = mu[None, :]
 
         if layout.shifted:
             gamma = pm.Normal("gamma_std", 0.0, PRIOR_SD["covariate"] * ps, dims=("covariate", "shifted_attribute"))
             z_std = pt.constant((panel.Z - layout.z_mean) / layout.z_scale)
-            shift = pt.dot(z_std, gamma)  # (person, shifted)
-            for i, k in enumerate(layout.shifted):
-                theta[k] = theta[k] + shift[:, i]
+            theta = theta + _into_columns(pt.dot(z_std, gamma), layout.shifted, n_k)
 
         if rnd:
             if layout.correlated:
@@ -300,41 +336,42 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
                 sd = pm.Deterministic("sd_std", pt.sqrt(pt.diag(chol @ chol.T)), dims="random_attribute")
             else:
                 sd = pm.HalfNormal("sd_std", sigma=sd_sd * ps, dims="random_attribute")
-            mean_r = pt.stack([theta[k] if getattr(theta[k], "ndim", 0) == 1
-                               else pt.repeat(pt.shape_padleft(theta[k]), n_p) for k in rnd], axis=1) \
-                if layout.shifted else None
             if layout.centred:
-                loc = mean_r if mean_r is not None else mu[rnd]
+                loc = theta[:, rnd] if layout.shifted else mu[rnd]
                 if layout.correlated:
                     eta = pm.MvNormal("eta_std", mu=loc, chol=chol, dims=("person", "random_attribute"))
                 else:
                     eta = pm.Normal("eta_std", mu=loc, sigma=sd, dims=("person", "random_attribute"))
-                for i, k in enumerate(rnd):
-                    theta[k] = eta[:, i]
+                is_random = np.isin(np.arange(n_k), rnd)
+                theta = pt.switch(is_random[None, :], _into_columns(eta, rnd, n_k), theta)
             else:
                 e = pm.Normal("e_std", 0.0, 1.0, dims=("person", "random_attribute"))
                 dev = pt.dot(e, chol.T) if layout.correlated else e * sd
-                for i, k in enumerate(rnd):
-                    theta[k] = theta[k] + dev[:, i]
+                theta = theta + _into_columns(dev, rnd, n_k)
 
         # coefficients of the standardised attributes
-        coef: list[Any] = []
-        for k in range(n_k):
-            coef.append(layout.sign(k) * pt.exp(theta[k]) if layout.is_lognormal(k) else theta[k])
+        lognormal = np.array([layout.is_lognormal(k) for k in range(n_k)])
+        if lognormal.any():
+            sign = np.array([layout.sign(k) for k in range(n_k)])
+            # exp only where lognormal, so a large linear taste can never overflow into the gradient
+            coef = pt.switch(lognormal[None, :], sign[None, :] * pt.exp(pt.switch(lognormal[None, :], theta, 0.0)),
+                             theta)
+        else:
+            coef = theta
         if layout.wtp_space:
             assert layout.price is not None
-            lam = -coef[layout.price]  # lambda > 0
-            beta = [coef[k] if k == layout.price else lam * coef[k] for k in range(n_k)]
+            lam = -coef[:, layout.price]  # lambda > 0
+            is_price = np.arange(n_k) == layout.price
+            beta = coef * pt.switch(is_price[None, :], 1.0, lam[:, None])
         else:
             beta = coef
+        beta = pt.broadcast_to(beta, (n_p, n_k))
 
-        loglik = task_loglik_graph(data, beta)
-        pm.Potential("panel_loglik", loglik.sum())
+        pm.Potential("panel_loglik", _panel_loglik(data, beta, likelihood))
 
         # --- reported quantities, in the user's units
         unit = np.array([layout.unit_factor(k) for k in range(n_k)])
         logshift = np.array([layout.log_shift(k) for k in range(n_k)])
-        lognormal = np.array([layout.is_lognormal(k) for k in range(n_k)])
         pm.Deterministic("taste_mean", pt.switch(lognormal, mu + logshift, mu * unit), dims="attribute")
         if rnd:
             r_unit = np.where(lognormal[rnd], 1.0, unit[rnd])
@@ -345,14 +382,12 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
             s_idx = list(layout.shifted)
             g_unit = np.where(lognormal[s_idx], 1.0, unit[s_idx])[None, :] / layout.z_scale[:, None]
             pm.Deterministic("covariate_effect", gamma * g_unit, dims=("covariate", "shifted_attribute"))
-        cols = [b if getattr(b, "ndim", 0) == 1 else pt.repeat(pt.shape_padleft(b), n_p) for b in beta]
-        beta_user = pt.stack(cols, axis=1) / layout.scale[None, :]
+        beta_user = beta / layout.scale[None, :]
         pm.Deterministic("person_taste", beta_user, dims=("person", "attribute"))
         if layout.wtp_space:
             wtp_cols = [k for k in range(n_k) if k != layout.price]
             coords_w = [names[k] for k in wtp_cols]
             model.add_coord("wtp_attribute", coords_w)
-            w = pt.stack([coef[k] if getattr(coef[k], "ndim", 0) == 1 else pt.repeat(pt.shape_padleft(coef[k]), n_p)
-                          for k in wtp_cols], axis=1)
+            w = pt.broadcast_to(coef, (n_p, n_k))[:, wtp_cols]
             pm.Deterministic("person_wtp", w * unit[wtp_cols][None, :], dims=("person", "wtp_attribute"))
     return model
