@@ -124,23 +124,36 @@ def run_one(config: str, size_name: str) -> dict:
 
 
 def numpy_floor_kernel(D, mask, n_other, mu, log_sd, e):
-    """Log-posterior and gradient of the non-centred normal-taste model, numpy vectorised (reference)."""
+    """Log-posterior and gradient of the non-centred normal-taste model, numpy vectorised (reference).
+
+    ``D`` (attribute, person, task * other) and ``mask`` as in ``DifferenceData``. In-place
+    operations and loops over the few other alternatives instead of reductions over a short
+    last axis, which numpy does slowly.
+    """
     sd = np.exp(log_sd)
     beta = mu + sd * e  # (P, K)
-    n_k = D.shape[0]
+    n_k, P, R = D.shape
     delta = D[0] * beta[:, 0:1]
+    tmp = np.empty_like(delta)
     for k in range(1, n_k):
-        delta += D[k] * beta[:, k : k + 1]
-    P, R = mask.shape
+        np.multiply(D[k], beta[:, k : k + 1], out=tmp)
+        delta += tmp
     d3 = delta.reshape(P, -1, n_other)  # (person, task, other alternative)
-    m = np.maximum(d3.max(-1), 0.0)
-    ex = np.exp(d3 - m[..., None]) * mask.reshape(P, -1, n_other)
-    tot = np.exp(-m) + ex.sum(-1)
-    ll = -(m + np.log(tot)).sum()
-    q = (ex / tot[..., None]).reshape(P, R)  # d ll / d delta = -q
+    m = np.maximum(d3[..., 0], 0.0)
+    for j in range(1, n_other):
+        np.maximum(m, d3[..., j], out=m)
+    ex = np.exp(d3 - m[..., None])
+    ex *= mask.reshape(P, -1, n_other)
+    tot = np.exp(-m)
+    for j in range(n_other):
+        tot += ex[..., j]
+    ll = -(m.sum() + np.log(tot).sum())
+    ex /= tot[..., None]
+    q = ex.reshape(P, R)  # d ll / d delta = -q
     g_beta = np.empty_like(beta)
     for k in range(n_k):
-        g_beta[:, k] = -(q * D[k]).sum(1)
+        np.multiply(q, D[k], out=tmp)
+        g_beta[:, k] = -tmp.sum(1)
     # priors: mu ~ N(0, 2.5), sd ~ HalfNormal(1) with log transform (+ Jacobian), e ~ N(0, 1)
     lp = ll - 0.5 * (mu**2).sum() / 2.5**2 - 0.5 * (sd**2).sum() + log_sd.sum() - 0.5 * (e**2).sum()
     g_mu = g_beta.sum(0) - mu / 2.5**2
@@ -209,9 +222,32 @@ def _time(f, n=200) -> float:
     return best * 1e3
 
 
+def _model_gradient_fn(model, mode):
+    """(callable x -> (logp, grad), n) for ``model``; under NUMBA the compiled function is called directly.
+
+    Calling the numba-compiled function (as nutpie does, from native code) leaves out the
+    Python wrapper that PyMC puts around every call; under the C backend that wrapper is
+    part of what PyMC's own sampler pays, so it stays in.
+    """
+    from pytensor.compile.sharedvalue import SharedVariable
+
+    f = model.logp_dlogp_function(ravel_inputs=True, mode=mode)
+    f.set_extra_values({})
+    n = sum(int(np.prod(v.shape)) for v in model.initial_point().values())
+    if mode != "NUMBA":
+        return f, n
+    fn = f._pytensor_function
+    shared = [i.get_value(borrow=True) if isinstance(i, SharedVariable) else None for i in fn.maker.fgraph.inputs]
+    jit = fn.vm.jit_fn
+
+    def call(x):
+        return jit(*[x if v is None else v for v in shared])
+
+    return call, n
+
+
 def kernels(size_name: str) -> dict:
-    """Milliseconds per log-posterior + gradient at ``size_name`` for the reference kernels and the graph."""
-    import hierchoice as hc
+    """Milliseconds per log-posterior + gradient at ``size_name``: reference kernels and the model's graphs."""
     from hierchoice.likelihood import difference_data
     from hierchoice.model import build_model, model_layout
 
@@ -224,93 +260,109 @@ def kernels(size_name: str) -> dict:
     mu, log_sd = rng.normal(0, 0.5, K), rng.normal(-0.5, 0.2, K)
     e = rng.normal(size=(panel.n_persons, K))
     out: dict[str, float] = {}
-    out["numpy_floor_ms"] = _time(lambda: numpy_floor_kernel(data.D, data.mask, data.n_others, mu, log_sd, e))
+    n_rep = 200 if size_name != "B3" else 10
+    out["numpy_floor_ms"] = _time(lambda: numpy_floor_kernel(data.D, data.mask, data.n_others, mu, log_sd, e), n_rep)
     fused = _numba_fused()
     g_e = np.empty_like(e)
-    out["numba_fused_ms"] = _time(lambda: fused(data.D, data.mask, data.n_others, mu, log_sd, e, g_e))
-
-    model = build_model(panel)
-    f = model.logp_dlogp_function(ravel_inputs=True)
-    f.set_extra_values({})
+    out["numba_fused_ms"] = _time(lambda: fused(data.D, data.mask, data.n_others, mu, log_sd, e, g_e), n_rep)
     x = np.concatenate([mu, log_sd, e.ravel()])
-    # check the reference against the graph before timing anything
-    lp_graph, grad_graph = f(x)
     lp_ref, g_mu, g_logsd, g_e_ref = numpy_floor_kernel(data.D, data.mask, data.n_others, mu, log_sd, e)
     ref_grad = np.concatenate([g_mu, g_logsd, g_e_ref.ravel()])
-    const = lp_graph - lp_ref  # normalising constants of the priors differ; gradients must agree
-    out["graph_vs_floor_max_grad_diff"] = float(np.max(np.abs(grad_graph - ref_grad)))
-    out["graph_minus_floor_logp_constant"] = float(const)
-    out["graph_c_ms"] = _time(lambda: f(x))
-    try:  # the same graph compiled by PyTensor's numba backend, which is what nutpie runs
-        fn = model.logp_dlogp_function(ravel_inputs=True, mode="NUMBA")
-        fn.set_extra_values({})
-        out["graph_numba_ms"] = _time(lambda: fn(x))
-    except Exception as err:  # numba missing or failing: say so, do not hide it
-        out["graph_numba_error"] = f"{type(err).__name__}: {err}"
-    out["graph_c_over_floor"] = out["graph_c_ms"] / out["numpy_floor_ms"]
-    if "graph_numba_ms" in out:
-        out["graph_numba_over_floor"] = out["graph_numba_ms"] / out["numpy_floor_ms"]
+    variants = {"graph_c": ("graph", None), "graph_numba": ("graph", "NUMBA"), "op_c": ("fused", None),
+                "op_numba": ("fused", "NUMBA")}
+    for name, (likelihood, mode) in variants.items():
+        f, n = _model_gradient_fn(build_model(panel, likelihood=likelihood), mode)
+        lp, grad = f(x)
+        # check against the reference before timing (the priors' normalising constants differ)
+        out[f"{name}_max_grad_diff"] = float(np.max(np.abs(np.asarray(grad) - ref_grad)))
+        out[f"{name}_ms"] = _time(lambda: f(x), n_rep)
+    floor = min(out["numpy_floor_ms"], out["numba_fused_ms"])
+    out["floor_ms"] = floor
+    for name in variants:
+        out[f"{name}_over_floor"] = out[f"{name}_ms"] / floor
     return {k: (float(f"{v:.4g}") if isinstance(v, float) else v) for k, v in out.items()}
 
 
 def scaling() -> list[dict]:
-    """Cost of one gradient (C backend) as persons, tasks and attributes grow."""
+    """Cost of one log-posterior + gradient of the default model (fused Op, numba) as each dimension grows."""
     from hierchoice.model import build_model
 
     rows = []
-    base = dict(n_persons=500, n_tasks=10, n_alternatives=3, n_attributes=4, correlated=False)
-    for key, values in (("n_persons", [250, 500, 1000]), ("n_tasks", [5, 10, 20]), ("n_attributes", [2, 4, 8])):
+    base = dict(n_persons=1000, n_tasks=10, n_alternatives=3, n_attributes=4, correlated=False)
+    grid = (("n_persons", [500, 1000, 4000]), ("n_tasks", [5, 10, 20]), ("n_alternatives", [2, 3, 5]),
+            ("n_attributes", [2, 4, 8]))
+    for key, values in grid:
         for v in values:
             size = base | {key: v}
             _, panel = _panel(size)
-            model = build_model(panel)
-            f = model.logp_dlogp_function(ravel_inputs=True)
-            f.set_extra_values({})
-            x = np.zeros(f.size) + 0.01
-            rows.append({"vary": key, "value": v, "ms_per_gradient": round(_time(lambda: f(x), 100), 4)})
+            f, n = _model_gradient_fn(build_model(panel), "NUMBA")
+            x = np.random.default_rng(0).normal(0, 0.3, n)
+            ms = _time(lambda: f(x), 100)
+            cells = size["n_persons"] * size["n_tasks"] * (size["n_alternatives"] - 1) * size["n_attributes"]
+            rows.append({"vary": key, "value": v, "ms_per_gradient": round(ms, 4),
+                         "ns_per_cell": round(ms * 1e6 / cells, 3)})
     return rows
+
+
+def _run_config(config: str, size: str, env: dict) -> dict:
+    proc = subprocess.run([sys.executable, __file__, "--one", config, size], capture_output=True, text=True, env=env)
+    if proc.returncode != 0:
+        raise SystemExit(f"{config} on {size} failed:\n{proc.stderr[-3000:]}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--tiny", action="store_true", help="tiny size: exercise the script, measure nothing")
     parser.add_argument("--b3", action="store_true", help="also run B3 (long)")
+    parser.add_argument("--b3-only", action="store_true", help="run only B3")
     parser.add_argument("--scaling", action="store_true", help="gradient cost at three sizes per dimension")
+    parser.add_argument("--no-warm", action="store_true",
+                        help="skip the tiny warm-up runs that fill the compilation caches before timing")
     parser.add_argument("--one", nargs=2, metavar=("CONFIG", "SIZE"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.one:
         print(json.dumps(run_one(*args.one)))
         return
-    sizes = ["tiny"] if args.tiny else ["B1"] + (["B3"] if args.b3 else [])
+    if args.tiny:
+        sizes = ["tiny"]
+    elif args.b3_only:
+        sizes = ["B3"]
+    else:
+        sizes = ["B1"] + (["B3"] if args.b3 else [])
     out_dir = Path(__file__).parent / "results"
     out_dir.mkdir(exist_ok=True)
     env = os.environ | {"PYTHONWARNINGS": "ignore"}
+    if not (args.tiny or args.no_warm):
+        # PyTensor and numba cache compiled code on disk, keyed by the graph and not by the data's size;
+        # one tiny run of each configuration first means every timed run below starts from warm caches
+        # (what a user sees from the second fit on), the naive model's C code included.
+        for config in ("naive", "default", "pymc"):
+            _run_config(config, "tiny", env)
     for size in sizes:
         configs = ["default"] if size == "B3" else ["naive", "default", "pymc"]
-        figures: dict = {"size": size, "shape": SIZES[size], "machine": f"{os.cpu_count()} cores", "runs": []}
+        figures: dict = {"size": size, "shape": SIZES[size], "machine": f"{os.cpu_count()} cores",
+                         "load_average_at_start": os.getloadavg()[0], "runs": []}
         for config in configs:
-            proc = subprocess.run([sys.executable, __file__, "--one", config, size], capture_output=True, text=True,
-                                  env=env)
-            if proc.returncode != 0:
-                raise SystemExit(f"{config} on {size} failed:\n{proc.stderr[-3000:]}")
-            row = json.loads(proc.stdout.strip().splitlines()[-1])
+            row = _run_config(config, size, env)
             figures["runs"].append(row)
             print(f"{size:5} {config:8} wall {row['wall_s']:8.1f} s  min bulk ESS {row['min_bulk_ess']:8.1f}  "
-                  f"ESS/s {row['ess_per_s']:8.2f}  peak {row['peak_mb']:8.0f} MB", flush=True)
+                  f"ESS/s {row['ess_per_s']:8.2f}  peak {row['peak_mb']:8.0f} MB  "
+                  f"gradients {row['gradient_evals_sampling']}", flush=True)
         runs = {r["config"]: r for r in figures["runs"]}
         if "naive" in runs:
             for config in ("default", "pymc"):
                 ratio = runs[config]["ess_per_s"] / max(runs["naive"]["ess_per_s"], 1e-9)
                 figures[f"{config}_over_naive_ess_per_s"] = round(ratio, 2)
                 print(f"{size:5} ESS/s ratio {config} / naive: {ratio:.2f}")
-        if size != "B3":
-            figures["kernels"] = kernels(size)
-            for k, v in figures["kernels"].items():
-                print(f"{size:5} kernel {k}: {v}")
+        figures["kernels"] = kernels(size)
+        for k, v in figures["kernels"].items():
+            print(f"{size:5} kernel {k}: {v}")
         if args.scaling and size == "B1":
             figures["scaling"] = scaling()
             for row in figures["scaling"]:
-                print(f"scaling {row['vary']}={row['value']}: {row['ms_per_gradient']} ms per gradient")
+                print(f"scaling {row['vary']}={row['value']}: {row['ms_per_gradient']} ms per gradient, "
+                      f"{row['ns_per_cell']} ns per person-task-other-attribute cell")
         (out_dir / f"{size}.json").write_text(json.dumps(figures, indent=2))
         print(f"wrote {out_dir / (size + '.json')}")
 

@@ -34,7 +34,8 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     print(panel.summary)
     result = fit(panel, spec, draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed,
                  backend=args.backend, progressbar=not args.quiet,
-                 method="advi" if args.approximate else "nuts")
+                 method="advi" if args.approximate else "nuts",
+                 person_batch=args.person_batch if args.person_batch is not None else "auto")
     out = save_fit(result, args.out)
     print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
     print(result.population().to_string(float_format=lambda v: f"{v:.4g}"))
@@ -111,6 +112,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--approximate", action="store_true",
                    help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
+    p.add_argument("--person-batch", type=int, default=None, metavar="N",
+                   help="with --approximate: persons per random batch (default: 500 when the panel has over "
+                        "1000 persons, else all)")
     p.set_defaults(func=_cmd_fit)
 
     p = sub.add_parser("check", help="convergence verdict, predictive checks and LOO of a results folder")

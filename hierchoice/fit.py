@@ -133,6 +133,9 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
 def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
     from pymc.sampling.jax import sample_numpyro_nuts
 
+    from .logit_op import register_jax
+
+    register_jax()  # the fused likelihood's JAX implementation
     with model:
         return sample_numpyro_nuts(
             draws=draws, tune=tune, chains=chains, random_seed=seed, target_accept=target_accept,
@@ -158,6 +161,24 @@ def _approximate_advi(model, *, draws, seed, iterations, var_names, progressbar)
     return az.InferenceData(posterior=post)
 
 
+#: Persons per batch of stochastic ADVI when ``person_batch="auto"`` (see :func:`fit`).
+AUTO_PERSON_BATCH = 500
+
+
+def _person_batch(person_batch: int | str | None, n_persons: int, method: str) -> int | None:
+    """The ADVI person batch size to use (None: the whole panel)."""
+    if person_batch is None:
+        return None
+    if person_batch == "auto":
+        return AUTO_PERSON_BATCH if method == "advi" and n_persons > 2 * AUTO_PERSON_BATCH else None
+    if isinstance(person_batch, bool) or not isinstance(person_batch, int) or person_batch < 1:
+        raise SpecError(f"person_batch must be a positive whole number of persons, 'auto' or None; "
+                        f"got {person_batch!r}.")
+    if method != "advi":
+        raise SpecError("person_batch applies to method='advi' only: NUTS needs the whole panel's likelihood.")
+    return min(person_batch, n_persons)
+
+
 def fit(
     panel: ChoicePanel,
     spec: Spec | Mapping[str, Any] | str | Path | None = None,
@@ -172,6 +193,7 @@ def fit(
     progressbar: bool = True,
     method: str = "nuts",
     advi_iterations: int = 15_000,
+    person_batch: int | str | None = "auto",
 ) -> ChoiceFit:
     """Sample the panel mixed logit of ``panel`` with NUTS (or approximate it with ADVI).
 
@@ -193,11 +215,21 @@ def fit(
         intervals are usually too narrow; the result is flagged ``approximate``
         and the convergence checks do not apply to it.
     advi_iterations : int, default 15000
+    person_batch : int, "auto" or None, default "auto"
+        ADVI only: evaluate the likelihood on random batches of this many persons
+        (stochastic variational inference, an unbiased estimate of the full
+        likelihood; Hoffman et al. 2013), so each iteration costs the same however
+        many persons the panel has. ``"auto"`` uses :data:`AUTO_PERSON_BATCH`
+        persons when the panel has more than twice that many, else the whole panel;
+        ``None`` always uses the whole panel.
 
     Returns
     -------
     ChoiceFit
     """
+    if method not in ("nuts", "advi"):
+        raise SpecError(f"method must be 'nuts' or 'advi', got {method!r}.")
+    batch = _person_batch(person_batch, panel.n_persons, method)
     spec = panel.spec if spec is None else load_spec(spec)
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
                               target_accept=target_accept, cores=cores)
@@ -206,13 +238,11 @@ def fit(
     chosen_backend = resolve_backend(s.backend)
     layout = model_layout(panel, spec)
     t0 = time.perf_counter()
-    model = build_model(panel, spec)
+    model = build_model(panel, spec, person_batch=batch)
     keep = [v for v in REPORTED_VARS if v in model.named_vars]
     if not s.store_person_draws:
         keep = [v for v in keep if v not in ("person_taste", "person_wtp")]
     n_cores = s.cores or min(s.chains, 2)
-    if method not in ("nuts", "advi"):
-        raise SpecError(f"method must be 'nuts' or 'advi', got {method!r}.")
     try:
         if method == "advi":
             log.info("fitting mean-field ADVI (%s iterations)", advi_iterations)
@@ -240,6 +270,7 @@ def fit(
     }
     if method == "advi":
         info["advi_iterations"] = advi_iterations
+        info["person_batch"] = batch
     result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
     if result.has_person_draws:
         add_log_likelihood(result)

@@ -242,8 +242,11 @@ def _into_columns(values, columns: tuple[int, ...] | list[int], n_columns: int):
     return pt.dot(values, pt.constant(select))
 
 
-def _panel_loglik(data: DifferenceData, beta, likelihood: str):  # type: ignore[no-untyped-def]
-    """The scalar panel log-likelihood of the (person, attribute) tastes ``beta``."""
+def _panel_loglik(data: DifferenceData, beta, likelihood: str, person_batch: int | None = None):  # type: ignore[no-untyped-def]
+    """The scalar panel log-likelihood of the (person, attribute) tastes ``beta``.
+
+    With ``person_batch``, an unbiased estimate from a random batch of persons (see :func:`build_model`).
+    """
     if likelihood == "graph":
         return task_loglik_graph(data, [beta[:, k] for k in range(data.D.shape[0])]).sum()
     import pytensor
@@ -251,6 +254,20 @@ def _panel_loglik(data: DifferenceData, beta, likelihood: str):  # type: ignore[
     from .logit_op import op_layout, panel_logit_loglik
 
     D, mask = op_layout(data)
+    n_k, n_o, n_rows = D.shape
+    n_p = data.D.shape[1]
+    if person_batch is not None:
+        import pymc as pm
+
+        # (person, ...) views so that one random index picks whole persons
+        D_p = pytensor.shared(np.ascontiguousarray(D.reshape(n_k, n_o, n_p, -1).transpose(2, 0, 1, 3)),
+                              name="panel_differences_by_person", borrow=True)
+        mask_p = pytensor.shared(np.ascontiguousarray(mask.reshape(n_o, n_p, -1).transpose(1, 0, 2)),
+                                 name="panel_available_by_person", borrow=True)
+        idx = pm.Minibatch(np.arange(n_p), batch_size=int(person_batch))
+        D_b = D_p[idx].transpose(1, 2, 0, 3).reshape((n_k, n_o, -1))
+        mask_b = mask_p[idx].transpose(1, 0, 2).reshape((n_o, -1))
+        return panel_logit_loglik(beta[idx], D_b, mask_b) * (n_p / person_batch)
     # shared, not constants: compiled code then neither embeds the data nor depends on it for caching
     D = pytensor.shared(D, name="panel_differences", borrow=True)
     mask = pytensor.shared(mask, name="panel_available", borrow=True)
@@ -258,7 +275,7 @@ def _panel_loglik(data: DifferenceData, beta, likelihood: str):  # type: ignore[
 
 
 def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None, *,  # type: ignore[no-untyped-def]
-                likelihood: str = "fused"):
+                likelihood: str = "fused", person_batch: int | None = None):
     r"""Build the panel mixed logit of ``panel`` under ``spec`` as a :class:`pymc.Model`.
 
     A pure function: it reads the panel and the spec and samples nothing.
@@ -275,6 +292,12 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
         plain PyTensor graph (:func:`hierchoice.likelihood.task_loglik_graph`). Both
         give the same log-posterior to rounding; ``"graph"`` is the reference the
         fused Op is tested against.
+    person_batch : int, optional
+        For stochastic variational inference only: the likelihood is evaluated on
+        a random batch of this many persons (drawn with replacement at each
+        evaluation) and scaled by ``n_persons / person_batch``, an unbiased estimate
+        of the full panel log-likelihood (Hoffman et al. 2013, JMLR 14). Not for
+        NUTS, which needs the exact log-posterior.
 
     Returns
     -------
@@ -293,6 +316,8 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
 
     if likelihood not in ("fused", "graph"):
         raise SpecError(f"likelihood must be 'fused' or 'graph', got {likelihood!r}.")
+    if person_batch is not None and (likelihood != "fused" or person_batch < 1):
+        raise SpecError(f"person_batch must be a positive number of persons (fused likelihood), got {person_batch!r}.")
     spec = panel.spec if spec is None else load_spec(spec)
     panel = panel.with_spec(spec)
     layout = model_layout(panel, spec)
@@ -367,7 +392,7 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
             beta = coef
         beta = pt.broadcast_to(beta, (n_p, n_k))
 
-        pm.Potential("panel_loglik", _panel_loglik(data, beta, likelihood))
+        pm.Potential("panel_loglik", _panel_loglik(data, beta, likelihood, person_batch))
 
         # --- reported quantities, in the user's units
         unit = np.array([layout.unit_factor(k) for k in range(n_k)])

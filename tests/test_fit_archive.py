@@ -136,6 +136,21 @@ def test_approximate_path_is_flagged_and_close_to_nuts():
     assert (z < 2).all(), z
 
 
+def test_person_batches_for_advi_only_and_checked():
+    sim = hc.benchmark_scenario(60, 4, 3, 2, seed=8)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    with pytest.raises(hc.SpecError, match="method='advi' only"):
+        hc.fit(panel, person_batch=10)
+    for bad in (0, -3, 2.5, "many", True):
+        with pytest.raises(hc.SpecError, match="person_batch"):
+            hc.fit(panel, method="advi", person_batch=bad)
+    approx = hc.fit(panel, draws=50, seed=1, method="advi", person_batch=20, advi_iterations=300, progressbar=False)
+    assert approx.info["person_batch"] == 20 and approx.approximate
+    # "auto" keeps small panels whole
+    assert hc.fit(panel, draws=20, seed=1, method="advi", advi_iterations=50,
+                  progressbar=False).info["person_batch"] is None
+
+
 def test_a_spec_with_other_tastes_is_what_gets_fitted(small):
     _, panel, _ = small
     table = panel.spec.to_dict()
