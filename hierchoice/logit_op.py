@@ -305,6 +305,19 @@ def panel_logit_loglik(beta, D, mask):  # type: ignore[no-untyped-def]
 # ----------------------------------------------------------------- backends
 
 
+def _kernel_version() -> int:
+    """A number that changes whenever the kernel's source does.
+
+    PyTensor's on-disk cache knows the Op only by its type and this number: a fixed
+    number would keep serving compiled code of an older kernel after an edit.
+    """
+    import hashlib
+    import inspect
+
+    source = "".join(inspect.getsource(f.py_func) for f in (_exp_nonpositive, _log_positive, loglik_and_grad))
+    return int(hashlib.sha256(source.encode()).hexdigest()[:12], 16)
+
+
 def _register_numba() -> None:
     from pytensor.link.numba.dispatch import basic as nb_basic
 
@@ -320,7 +333,8 @@ def _register_numba() -> None:
 
     register = getattr(nb_basic, "register_funcify_default_op_cache_key", None)
     if register is not None:  # PyTensor >= 2.36 caches compiled Ops on disk by key
-        register(PanelLogitLoglik)(lambda op, node=None, **kw: (funcify(op, node, **kw), 2))
+        version = _kernel_version()
+        register(PanelLogitLoglik)(lambda op, node=None, **kw: (funcify(op, node, **kw), version))
     else:
         nb_basic.numba_funcify.register(PanelLogitLoglik)(funcify)
 
