@@ -17,16 +17,22 @@ naive
     What a user would write by hand: a per-row gather ``beta[person_index]``, ``pm.Categorical(logit_p=...)``,
     PyMC's default sampler; same priors on the same standardised attributes, same draws.
 default
-    ``hierchoice.fit`` with its defaults (nutpie, low-rank mass matrix, difference-form likelihood).
+    ``hierchoice.fit`` with its defaults (nutpie, diagonal mass matrix, the fused likelihood Op), person draws
+    not stored.
 pymc
-    ``hierchoice.fit`` with PyMC's own NUTS.
+    ``hierchoice.fit`` with PyMC's own NUTS (the same model, compiled by PyTensor's C backend).
+default_x4
+    ``default`` with four times the draws: its peak memory against ``default``'s shows whether memory grows with
+    draws (it should not, with person draws not stored).
 
-Kernels (one log-posterior + gradient of the B1 model, independent normal tastes, non-centred)
--------------------------------------------------------------------------------------------------
-numpy_floor   numpy's vectorised exp/log on the difference form, value and exact gradient (the practical floor)
-numba_fused   one fused pass in numba with scalar exp (a second reference)
-graph_c       hierchoice's PyTensor graph, C backend
-graph_numba   hierchoice's PyTensor graph as nutpie compiles it (numba)
+Kernels (one log-posterior + gradient of the model, non-centred)
+-----------------------------------------------------------------
+numpy_floor   numpy's vectorised exp/log on the difference form, value and exact gradient (reference)
+numba_fused   one fused pass in numba with scalar exp (reference); the floor is the faster of the two
+graph_c       the model with the plain PyTensor likelihood graph, C backend
+graph_numba   the same under PyTensor's numba backend (called natively, as nutpie does)
+op_c          the model with the fused likelihood Op (the default), C backend (what PyMC's NUTS runs)
+op_numba      the same under numba (what nutpie runs)
 """
 
 from __future__ import annotations
@@ -48,7 +54,7 @@ SIZES = {
     "B1": dict(n_persons=1000, n_tasks=10, n_alternatives=3, n_attributes=4, correlated=False, draws=500, tune=500,
                chains=2),
     "B3": dict(n_persons=10_000, n_tasks=12, n_alternatives=4, n_attributes=5, correlated=True, draws=1000,
-               tune=1000, chains=4),
+               tune=500, chains=4),
 }
 
 
@@ -106,8 +112,10 @@ def run_one(config: str, size_name: str) -> dict:
         grads = int(idata.sample_stats["n_steps"].sum())
     else:
         backend = "pymc" if config == "pymc" else "auto"
+        # default_x4: four times the draws, to show that memory does not grow with draws x persons
+        draws = size["draws"] * (4 if config == "default_x4" else 1)
         spec = hc.Spec.from_dict(panel.spec.to_dict() | {"sampling": {"store_person_draws": False}})
-        result = hc.fit(panel, spec, draws=size["draws"], tune=size["tune"], chains=size["chains"], seed=3,
+        result = hc.fit(panel, spec, draws=draws, tune=size["tune"], chains=size["chains"], seed=3,
                         backend=backend, progressbar=False)
         idata = result.idata
         names = ["taste_mean", "taste_sd", "taste_corr"]
@@ -340,7 +348,7 @@ def main() -> None:
         for config in ("naive", "default", "pymc"):
             _run_config(config, "tiny", env)
     for size in sizes:
-        configs = ["default"] if size == "B3" else ["naive", "default", "pymc"]
+        configs = ["default"] if size == "B3" else ["naive", "default", "pymc", "default_x4"]
         figures: dict = {"size": size, "shape": SIZES[size], "machine": f"{os.cpu_count()} cores",
                          "load_average_at_start": os.getloadavg()[0], "runs": []}
         for config in configs:
@@ -355,6 +363,10 @@ def main() -> None:
                 ratio = runs[config]["ess_per_s"] / max(runs["naive"]["ess_per_s"], 1e-9)
                 figures[f"{config}_over_naive_ess_per_s"] = round(ratio, 2)
                 print(f"{size:5} ESS/s ratio {config} / naive: {ratio:.2f}")
+        if "default_x4" in runs:
+            grow = runs["default_x4"]["peak_mb"] / runs["default"]["peak_mb"]
+            figures["peak_memory_ratio_x4_draws"] = round(grow, 3)
+            print(f"{size:5} peak memory with 4x the draws / default: {grow:.3f}")
         figures["kernels"] = kernels(size)
         for k, v in figures["kernels"].items():
             print(f"{size:5} kernel {k}: {v}")
