@@ -94,6 +94,23 @@ def test_without_person_draws(small):
     assert "taste_mean" in result.posterior
 
 
+def test_nutpie_trace_holds_only_the_requested_variables(small):
+    # nutpie would store every free variable with each draw (the person deviations included), so memory
+    # grew with persons x draws even without person draws; the trimmed compile stores what is asked for
+    from hierchoice.fit import _compile_nutpie
+
+    _, panel, _ = small
+    model = hc.build_model(panel)
+    compiled = _compile_nutpie(model, ["taste_mean", "taste_sd"])
+    assert set(compiled.shapes) == {"taste_mean", "taste_sd"}
+    assert compiled.n_expanded == sum(int(np.prod(shape)) for shape in compiled.shapes.values())
+    import nutpie
+
+    trace = nutpie.sample(compiled, draws=20, tune=20, chains=1, seed=1, progress_bar=False)
+    assert set(trace.posterior.data_vars) == {"taste_mean", "taste_sd"}
+    assert trace.posterior["taste_sd"].shape[-1] == len(model.coords["random_attribute"])
+
+
 def test_fit_command_writes_a_results_folder(tmp_path, capsys):
     from hierchoice.demo import write_demo_data
 
