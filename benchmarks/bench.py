@@ -55,6 +55,9 @@ SIZES = {
                chains=2),
     "B3": dict(n_persons=10_000, n_tasks=12, n_alternatives=4, n_attributes=5, correlated=True, draws=1000,
                tune=500, chains=4),
+    # B3's panel with a short run: steps per draw, seconds per draw and memory, in minutes instead of tens
+    "B3short": dict(n_persons=10_000, n_tasks=12, n_alternatives=4, n_attributes=5, correlated=True, draws=200,
+                    tune=300, chains=2),
 }
 
 
@@ -124,8 +127,16 @@ def run_one(config: str, size_name: str) -> dict:
     wall = time.perf_counter() - t0
     ess = _min_ess(idata, names)
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    return {"config": config, "wall_s": round(wall, 2), "min_bulk_ess": round(ess, 1),
-            "ess_per_s": round(ess / wall, 3), "peak_mb": round(peak_mb, 1), "gradient_evals_sampling": grads}
+    row = {"config": config, "wall_s": round(wall, 2), "min_bulk_ess": round(ess, 1),
+           "ess_per_s": round(ess / wall, 3), "peak_mb": round(peak_mb, 1), "gradient_evals_sampling": grads}
+    if config != "naive":
+        import arviz as az
+
+        rhat = az.rhat(idata, var_names=[n for n in names if n in idata.posterior])
+        row["max_rhat"] = round(max(float(rhat[v].max()) for v in rhat.data_vars), 4)
+        row["steps_per_draw"] = round(float(idata.sample_stats["n_steps"].mean()), 1)
+        row["divergences"] = int(idata.sample_stats["diverging"].sum())
+    return row
 
 
 # ---------------------------------------------------------------- kernels
@@ -324,6 +335,8 @@ def main() -> None:
     parser.add_argument("--tiny", action="store_true", help="tiny size: exercise the script, measure nothing")
     parser.add_argument("--b3", action="store_true", help="also run B3 (long)")
     parser.add_argument("--b3-only", action="store_true", help="run only B3")
+    parser.add_argument("--b3-short", action="store_true",
+                        help="B3's panel, 2 chains x 200 draws after 300 tuning steps (default and default_x4)")
     parser.add_argument("--scaling", action="store_true", help="gradient cost at three sizes per dimension")
     parser.add_argument("--no-warm", action="store_true",
                         help="skip the tiny warm-up runs that fill the compilation caches before timing")
@@ -336,6 +349,8 @@ def main() -> None:
         sizes = ["tiny"]
     elif args.b3_only:
         sizes = ["B3"]
+    elif args.b3_short:
+        sizes = ["B3short"]
     else:
         sizes = ["B1"] + (["B3"] if args.b3 else [])
     out_dir = Path(__file__).parent / "results"
@@ -348,7 +363,8 @@ def main() -> None:
         for config in ("naive", "default", "pymc"):
             _run_config(config, "tiny", env)
     for size in sizes:
-        configs = ["default"] if size == "B3" else ["naive", "default", "pymc", "default_x4"]
+        configs = {"B3": ["default"], "B3short": ["default", "default_x4"]}.get(
+            size, ["naive", "default", "pymc", "default_x4"])
         figures: dict = {"size": size, "shape": SIZES[size], "machine": f"{os.cpu_count()} cores",
                          "load_average_at_start": os.getloadavg()[0], "runs": []}
         for config in configs:
@@ -356,7 +372,8 @@ def main() -> None:
             figures["runs"].append(row)
             print(f"{size:5} {config:8} wall {row['wall_s']:8.1f} s  min bulk ESS {row['min_bulk_ess']:8.1f}  "
                   f"ESS/s {row['ess_per_s']:8.2f}  peak {row['peak_mb']:8.0f} MB  "
-                  f"gradients {row['gradient_evals_sampling']}", flush=True)
+                  f"gradients {row['gradient_evals_sampling']}  steps/draw {row.get('steps_per_draw', '-')}  "
+                  f"max R-hat {row.get('max_rhat', '-')}", flush=True)
         runs = {r["config"]: r for r in figures["runs"]}
         if "naive" in runs:
             for config in ("default", "pymc"):
@@ -367,9 +384,10 @@ def main() -> None:
             grow = runs["default_x4"]["peak_mb"] / runs["default"]["peak_mb"]
             figures["peak_memory_ratio_x4_draws"] = round(grow, 3)
             print(f"{size:5} peak memory with 4x the draws / default: {grow:.3f}")
-        figures["kernels"] = kernels(size)
-        for k, v in figures["kernels"].items():
-            print(f"{size:5} kernel {k}: {v}")
+        if size != "B3short":
+            figures["kernels"] = kernels(size)
+            for k, v in figures["kernels"].items():
+                print(f"{size:5} kernel {k}: {v}")
         if args.scaling and size == "B1":
             figures["scaling"] = scaling()
             for row in figures["scaling"]:
