@@ -127,6 +127,8 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
     return nutpie.sample(
         compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed, target_accept=target_accept,
         progress_bar=progressbar, low_rank_modified_mass_matrix=(mass_matrix == "low_rank"), save_warmup=False,
+        # per-draw copies of the unconstrained point, gradient and mass matrix would each grow with persons x draws
+        store_unconstrained=False, store_gradient=False, store_mass_matrix=False, store_divergences=False,
     )
 
 
