@@ -151,36 +151,47 @@ def _compile_nutpie(model, var_names):  # type: ignore[no-untyped-def]
         return nutpie.compile_pymc_model(model, var_names=var_names)
 
     def trimmed(model, **kwargs):  # type: ignore[no-untyped-def]
-        n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes) = builder(model, **kwargs)
-        keep = [i for i, name in enumerate(names) if name in var_names]
-        if not kwargs.get("join_expanded", True) or len(keep) == len(names) or not keep:
-            return n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes)
-        import pytensor
-        import pytensor.tensor as pt
-        from pymc.pytensorf import compile as compile_pymc
-
-        # the kept variables as functions of one flat vector of the free variables, as nutpie lays it out
-        point = pt.TensorType("float64", shape=(n_free,))(name="_unconstrained_point")
-        free = {model.rvs_to_values[rv].name: rv for rv in model.free_RVs}
-        replace = {model.rvs_to_values[free[name]]: point[sl].reshape(shape).astype(free[name].dtype)
-                   for name, sl, shape in zip(names, slices, shapes) if name in free}
-        wanted = {v.name: v for v in model.unobserved_value_vars}
-        outs = pytensor.clone_replace([pt.as_tensor(wanted[names[i]]).ravel() for i in keep], replace)
-        with model:
-            new_expand = compile_pymc((point,), [pt.concatenate(outs)], mode=kwargs.get("mode"))
-        new_slices, start = [], 0
-        for i in keep:
-            length = slices[i].stop - slices[i].start
-            new_slices.append(slice(start, start + length))
-            start += length
-        info = ([names[i] for i in keep], new_slices, [shapes[i] for i in keep])
-        return n_free, start, logp_fn, new_expand, init_fn, info
+        built = builder(model, **kwargs)
+        try:
+            return _trim_expand(model, built, var_names, kwargs)
+        except Exception as err:  # nutpie's layout is not what this expects: keep nutpie's own
+            log.warning("could not trim nutpie's trace (%s: %s); it keeps every free variable (more memory)",
+                        type(err).__name__, err)
+            return built
 
     ncp._make_functions = trimmed
     try:
         return nutpie.compile_pymc_model(model, var_names=var_names)
     finally:
         ncp._make_functions = builder
+
+
+def _trim_expand(model, built, var_names, kwargs):  # type: ignore[no-untyped-def]
+    """nutpie's ``_make_functions`` result with an expand function for ``var_names`` only."""
+    n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes) = built
+    keep = [i for i, name in enumerate(names) if name in var_names]
+    if not kwargs.get("join_expanded", True) or len(keep) == len(names) or not keep:
+        return n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes)
+    import pytensor
+    import pytensor.tensor as pt
+    from pymc.pytensorf import compile as compile_pymc
+
+    # the kept variables as functions of one flat vector of the free variables, as nutpie lays it out
+    point = pt.TensorType("float64", shape=(n_free,))(name="_unconstrained_point")
+    free = {model.rvs_to_values[rv].name: rv for rv in model.free_RVs}
+    replace = {model.rvs_to_values[free[name]]: point[sl].reshape(shape).astype(free[name].dtype)
+               for name, sl, shape in zip(names, slices, shapes) if name in free}
+    wanted = {v.name: v for v in model.unobserved_value_vars}
+    outs = pytensor.clone_replace([pt.as_tensor(wanted[names[i]]).ravel() for i in keep], replace)
+    with model:
+        new_expand = compile_pymc((point,), [pt.concatenate(outs)], mode=kwargs.get("mode"))
+    new_slices, start = [], 0
+    for i in keep:
+        length = slices[i].stop - slices[i].start
+        new_slices.append(slice(start, start + length))
+        start += length
+    info = ([names[i] for i in keep], new_slices, [shapes[i] for i in keep])
+    return n_free, start, logp_fn, new_expand, init_fn, info
 
 
 def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
