@@ -254,7 +254,7 @@ def _panel_loglik(data: DifferenceData, beta, likelihood: str, person_batch: int
     from .logit_op import op_layout, panel_logit_loglik
 
     D, mask = op_layout(data)
-    n_k, n_o, n_rows = D.shape
+    n_k, n_o, _ = D.shape
     n_p = data.D.shape[1]
     if person_batch is not None:
         import pymc as pm
