@@ -121,7 +121,9 @@ def _sample_pymc(model, *, draws, tune, chains, cores, seed, target_accept, var_
 def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
     import nutpie
 
-    compiled = _compile_nutpie(model, var_names)
+    from .nutpie_compile import compile_nutpie
+
+    compiled = compile_nutpie(model, var_names)
     # a low-rank update of the diagonal mass matrix follows the correlations between
     # population parameters (constants vs taste means, correlations vs SDs)
     return nutpie.sample(
@@ -130,68 +132,6 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
         # per-draw copies of the unconstrained point, gradient and mass matrix would each grow with persons x draws
         store_unconstrained=False, store_gradient=False, store_mass_matrix=False, store_divergences=False,
     )
-
-
-def _compile_nutpie(model, var_names):  # type: ignore[no-untyped-def]
-    """``nutpie.compile_pymc_model`` whose trace holds ``var_names`` only.
-
-    nutpie stores every free variable of the model with each draw, whatever ``var_names``
-    says; for a panel model that includes the (person, attribute) deviations, so memory
-    would grow with persons x draws even when no person draws are wanted (B3 at 4 x 1000
-    draws: 1.6 GB). This trims the stored vector to the requested variables by wrapping
-    nutpie's function builder; if nutpie's internals differ from what it expects, it falls
-    back to the plain compile (and says so in the log).
-    """
-    import nutpie
-    import nutpie.compile_pymc as ncp
-
-    builder = getattr(ncp, "_make_functions", None)
-    if builder is None:
-        log.warning("nutpie's internals changed: the trace keeps every free variable (more memory)")
-        return nutpie.compile_pymc_model(model, var_names=var_names)
-
-    def trimmed(model, **kwargs):  # type: ignore[no-untyped-def]
-        built = builder(model, **kwargs)
-        try:
-            return _trim_expand(model, built, var_names, kwargs)
-        except Exception as err:  # nutpie's layout is not what this expects: keep nutpie's own
-            log.warning("could not trim nutpie's trace (%s: %s); it keeps every free variable (more memory)",
-                        type(err).__name__, err)
-            return built
-
-    ncp._make_functions = trimmed
-    try:
-        return nutpie.compile_pymc_model(model, var_names=var_names)
-    finally:
-        ncp._make_functions = builder
-
-
-def _trim_expand(model, built, var_names, kwargs):  # type: ignore[no-untyped-def]
-    """nutpie's ``_make_functions`` result with an expand function for ``var_names`` only."""
-    n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes) = built
-    keep = [i for i, name in enumerate(names) if name in var_names]
-    if not kwargs.get("join_expanded", True) or len(keep) == len(names) or not keep:
-        return n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes)
-    import pytensor
-    import pytensor.tensor as pt
-    from pymc.pytensorf import compile as compile_pymc
-
-    # the kept variables as functions of one flat vector of the free variables, as nutpie lays it out
-    point = pt.TensorType("float64", shape=(n_free,))(name="_unconstrained_point")
-    free = {model.rvs_to_values[rv].name: rv for rv in model.free_RVs}
-    replace = {model.rvs_to_values[free[name]]: point[sl].reshape(shape).astype(free[name].dtype)
-               for name, sl, shape in zip(names, slices, shapes) if name in free}
-    wanted = {v.name: v for v in model.unobserved_value_vars}
-    outs = pytensor.clone_replace([pt.as_tensor(wanted[names[i]]).ravel() for i in keep], replace)
-    with model:
-        new_expand = compile_pymc((point,), [pt.concatenate(outs)], mode=kwargs.get("mode"))
-    new_slices, start = [], 0
-    for i in keep:
-        length = slices[i].stop - slices[i].start
-        new_slices.append(slice(start, start + length))
-        start += length
-    info = ([names[i] for i in keep], new_slices, [shapes[i] for i in keep])
-    return n_free, start, logp_fn, new_expand, init_fn, info
 
 
 def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
