@@ -236,7 +236,7 @@ def fit(
     batch = _person_batch(person_batch, panel.n_persons, method)
     spec = panel.spec if spec is None else load_spec(spec)
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
-                              target_accept=target_accept, cores=cores)
+                              target_accept=target_accept, cores=cores).for_method(method)
     s = spec.sampling
     panel = panel.with_spec(spec)  # the spec's tastes, not those the panel was validated with
     chosen_backend = resolve_backend(s.backend)

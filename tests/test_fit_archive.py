@@ -143,6 +143,8 @@ def test_approximate_path_is_flagged_and_close_to_nuts():
     approx = hc.fit(panel, draws=200, seed=2, method="advi", progressbar=False)
     assert approx.approximate and not nuts.approximate
     assert approx.info["method"].startswith("ADVI")
+    # "auto" parameterisation: centred for ADVI, non-centred for NUTS, and the saved spec says which
+    assert approx.spec.model.parameterization == "centred" and nuts.spec.model.parameterization == "noncentred"
     assert set(approx.posterior.data_vars) == set(nuts.posterior.data_vars)
     assert "approximate" in repr(approx)
     # population means of normal tastes within 2 posterior SDs of NUTS (the target for the approximate path;

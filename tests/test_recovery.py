@@ -71,23 +71,22 @@ def test_recovery(case):
 
 def test_stochastic_advi_population_means_near_nuts_on_b1():
     # The speed issue asks the approximate path for population means within 2 NUTS posterior SDs of NUTS on the
-    # B1 panel (1000 persons, 10 tasks, 3 alternatives, 4 normal tastes). Mean-field ADVI does not reach it: it
-    # understates the taste SDs and, with them, shrinks the taste means towards 0 (measured on B1: 0.8-2.2
-    # posterior SDs off for the means, 1.6-3.2 for the SDs, the same with the whole panel per iteration or
-    # batches of 200 or 500 persons, 15,000 or 30,000 iterations; docs/performance.md). The known behaviour of
-    # mean-field approximations: Blei, Kucukelbir & McAuliffe 2017, JASA 112, section 5. This test pins what
-    # the path does deliver, so that it cannot get worse unnoticed: every mean within 3 posterior SDs, with
-    # the right sign, and shrunk rather than inflated.
+    # B1 panel (1000 persons, 10 tasks, 3 alternatives, 4 normal tastes). ADVI runs on the centred model by default
+    # (model.parameterization = "auto"): mean-field ADVI on the non-centred model shrank the taste SDs and means
+    # (0.8-2.2 SDs off), on the centred one the means landed within 1.72 SDs in nine runs (three seeds x whole
+    # panel, batches of 500 and of 200 persons; docs/performance.md). Reference: NUTS on the same model.
+    # Mean-field intervals are too narrow (Blei, Kucukelbir & McAuliffe 2017, JASA 112, section 5): only the
+    # location is held to the target.
     sim = hc.benchmark_scenario(1000, 10, 3, 4, seed=1)
     panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
     spec = hc.Spec.from_dict(panel.spec.to_dict() | {"sampling": {"store_person_draws": False}})
     nuts = hc.fit(panel, spec, draws=500, tune=500, chains=2, seed=3, progressbar=False)
-    approx = hc.fit(panel, spec, draws=500, seed=2, method="advi", person_batch=200, progressbar=False)
+    approx = hc.fit(panel, spec, draws=500, seed=2, method="advi", person_batch=200, advi_iterations=30_000,
+                    progressbar=False)
     assert approx.info["person_batch"] == 200 and approx.approximate
+    assert approx.spec.model.parameterization == "centred"
     n, a = nuts.population(), approx.population()
-    rows = [r for r in n.index if r.startswith("taste_mean")]
+    rows = [r for r in n.index if r.startswith("taste_mean") or r.startswith("taste_sd")]
     z = ((a.loc[rows, "mean"] - n.loc[rows, "mean"]) / n.loc[rows, "sd"]).abs()
     print("ADVI vs NUTS, |difference| in NUTS posterior SDs:", z.round(2).to_dict())
-    assert (z < 3).all(), z
-    assert (np.sign(a.loc[rows, "mean"]) == np.sign(n.loc[rows, "mean"])).all()
-    assert (a.loc[rows, "mean"].abs() <= n.loc[rows, "mean"].abs() + n.loc[rows, "sd"]).all()
+    assert (z < 2).all(), z

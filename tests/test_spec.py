@@ -63,10 +63,18 @@ def test_defaults_of_a_minimal_spec() -> None:
     assert not spec.dynamics.active
     assert (spec.dynamics.first_task, spec.dynamics.taste) == ("drop", "fixed")
     assert spec.data == DataOptions(alternatives=None, opt_out=None, task_scope="person", invalid_tasks="error")
-    assert spec.model == ModelOptions(correlated=False, parameterization="noncentred", wtp_space=False,
+    assert spec.model == ModelOptions(correlated=False, parameterization="auto", wtp_space=False,
                                       price=None, prior_scale=1.0)
     assert spec.sampling == SamplingOptions(chains=2, draws=1000, tune=1000, target_accept=0.85,
                                             seed=20261202, backend="auto", store_person_draws=True, cores=None)
+
+
+def test_auto_parameterization_is_made_concrete_per_method() -> None:
+    spec = Spec.from_dict(minimal())
+    assert spec.for_method("nuts").model.parameterization == "noncentred"
+    assert spec.for_method("advi").model.parameterization == "centred"
+    chosen = Spec.from_dict(minimal() | {"model": {"parameterization": "noncentred"}})
+    assert chosen.for_method("advi") is chosen  # a user's explicit choice is kept
 
 
 def test_full_spec_reads_every_key() -> None:
