@@ -114,9 +114,9 @@ def run_one(config: str, size_name: str) -> dict:
         names = ["taste_mean", "taste_sd"]
         grads = int(idata.sample_stats["n_steps"].sum())
     else:
-        backend = "pymc" if config == "pymc" else "auto"
-        # default_x4: four times the draws, to show that memory does not grow with draws x persons
-        draws = size["draws"] * (4 if config == "default_x4" else 1)
+        backend = {"pymc": "pymc", "nutpie": "nutpie"}.get(config.removesuffix("_x4"), "auto")
+        # *_x4: four times the draws, to show that memory does not grow with draws x persons
+        draws = size["draws"] * (4 if config.endswith("_x4") else 1)
         spec = hc.Spec.from_dict(panel.spec.to_dict() | {"sampling": {"store_person_draws": False}})
         result = hc.fit(panel, spec, draws=draws, tune=size["tune"], chains=size["chains"], seed=3,
                         backend=backend, progressbar=False)
@@ -127,8 +127,11 @@ def run_one(config: str, size_name: str) -> dict:
     wall = time.perf_counter() - t0
     ess = _min_ess(idata, names)
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    # PyMC's NUTS samples in child processes (one per core): their peak, the largest one's
+    children_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     row = {"config": config, "wall_s": round(wall, 2), "min_bulk_ess": round(ess, 1),
-           "ess_per_s": round(ess / wall, 3), "peak_mb": round(peak_mb, 1), "gradient_evals_sampling": grads}
+           "ess_per_s": round(ess / wall, 3), "peak_mb": round(peak_mb, 1),
+           "peak_child_mb": round(children_mb, 1), "gradient_evals_sampling": grads}
     if config != "naive":
         import arviz as az
 
@@ -340,6 +343,8 @@ def main() -> None:
     parser.add_argument("--scaling", action="store_true", help="gradient cost at three sizes per dimension")
     parser.add_argument("--no-warm", action="store_true",
                         help="skip the tiny warm-up runs that fill the compilation caches before timing")
+    parser.add_argument("--configs", help="comma-separated configurations to run instead of the size's usual ones "
+                        "(naive, default, pymc, nutpie, and any of them with _x4 for four times the draws)")
     parser.add_argument("--one", nargs=2, metavar=("CONFIG", "SIZE"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.one:
@@ -363,27 +368,28 @@ def main() -> None:
         for config in ("naive", "default", "pymc"):
             _run_config(config, "tiny", env)
     for size in sizes:
-        configs = {"B3": ["default"], "B3short": ["default", "default_x4"]}.get(
-            size, ["naive", "default", "pymc", "default_x4"])
+        configs = args.configs.split(",") if args.configs else {
+            "B3": ["default"], "B3short": ["default", "default_x4"]}.get(size, ["naive", "default", "pymc", "default_x4"])
         figures: dict = {"size": size, "shape": SIZES[size], "machine": f"{os.cpu_count()} cores",
                          "load_average_at_start": os.getloadavg()[0], "runs": []}
         for config in configs:
             row = _run_config(config, size, env)
             figures["runs"].append(row)
             print(f"{size:5} {config:8} wall {row['wall_s']:8.1f} s  min bulk ESS {row['min_bulk_ess']:8.1f}  "
-                  f"ESS/s {row['ess_per_s']:8.2f}  peak {row['peak_mb']:8.0f} MB  "
+                  f"ESS/s {row['ess_per_s']:8.2f}  peak {row['peak_mb']:8.0f} MB (child {row['peak_child_mb']:.0f})  "
                   f"gradients {row['gradient_evals_sampling']}  steps/draw {row.get('steps_per_draw', '-')}  "
                   f"max R-hat {row.get('max_rhat', '-')}", flush=True)
         runs = {r["config"]: r for r in figures["runs"]}
         if "naive" in runs:
-            for config in ("default", "pymc"):
+            for config in [c for c in ("default", "pymc", "nutpie") if c in runs]:
                 ratio = runs[config]["ess_per_s"] / max(runs["naive"]["ess_per_s"], 1e-9)
                 figures[f"{config}_over_naive_ess_per_s"] = round(ratio, 2)
                 print(f"{size:5} ESS/s ratio {config} / naive: {ratio:.2f}")
-        if "default_x4" in runs:
-            grow = runs["default_x4"]["peak_mb"] / runs["default"]["peak_mb"]
-            figures["peak_memory_ratio_x4_draws"] = round(grow, 3)
-            print(f"{size:5} peak memory with 4x the draws / default: {grow:.3f}")
+        for config in [c for c in ("default", "pymc", "nutpie") if c in runs and f"{c}_x4" in runs]:
+            key = "peak_child_mb" if runs[config]["peak_child_mb"] > runs[config]["peak_mb"] else "peak_mb"
+            grow = runs[f"{config}_x4"][key] / runs[config][key]
+            figures[f"{config}_peak_memory_ratio_x4_draws"] = round(grow, 3)
+            print(f"{size:5} {config}: peak memory ({key}) with 4x the draws / 1x: {grow:.3f}")
         if size != "B3short":
             figures["kernels"] = kernels(size)
             for k, v in figures["kernels"].items():

@@ -119,19 +119,44 @@ def _sample_pymc(model, *, draws, tune, chains, cores, seed, target_accept, var_
 
 
 def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
+    import shutil
+    import tempfile
+
+    import arviz as az
     import nutpie
 
     from .nutpie_compile import compile_nutpie
 
     compiled = compile_nutpie(model, var_names)
-    # a low-rank update of the diagonal mass matrix follows the correlations between
-    # population parameters (constants vs taste means, correlations vs SDs)
-    return nutpie.sample(
-        compiled, draws=draws, tune=tune, chains=chains, cores=cores, seed=seed, target_accept=target_accept,
-        progress_bar=progressbar, low_rank_modified_mass_matrix=(mass_matrix == "low_rank"), save_warmup=False,
+    options = {
+        "draws": draws, "tune": tune, "chains": chains, "cores": cores, "seed": seed, "target_accept": target_accept,
+        "progress_bar": progressbar, "save_warmup": False,
+        # a low-rank update of the diagonal mass matrix follows the correlations between
+        # population parameters (constants vs taste means, correlations vs SDs)
+        "low_rank_modified_mass_matrix": mass_matrix == "low_rank",
         # per-draw copies of the unconstrained point, gradient and mass matrix would each grow with persons x draws
-        store_unconstrained=False, store_gradient=False, store_mass_matrix=False, store_divergences=False,
-    )
+        "store_unconstrained": False, "store_gradient": False, "store_mass_matrix": False, "store_divergences": False,
+    }
+    store_type = getattr(getattr(nutpie, "zarr_store", None), "LocalStore", None)
+    if store_type is None:  # an older nutpie: the draws stay in its in-memory table
+        return nutpie.sample(compiled, **options)
+    # nutpie keeps each draw's unconstrained point and gradient (two doubles per free parameter, the person
+    # deviations included) whatever the store_* options say; in its in-memory table that grew with
+    # persons x draws (B1: 570 -> 786 MB for 250 -> 2000 draws per chain). Written to a zarr store in a
+    # temporary folder (TMPDIR), the process stayed at 521-522 MB (docs/performance.md). Only the
+    # per-draw statistics and the requested variables are read back; the folder is removed.
+    folder = tempfile.mkdtemp(prefix="hierchoice-draws-")
+    try:
+        idata = nutpie.sample(compiled, zarr_store=store_type(folder), **options)
+        groups = {}
+        for group in idata.groups():
+            data = idata[group]
+            if group == "sample_stats":  # drop the per-parameter arrays (gradients, points, mass matrix)
+                data = data[[v for v, da in data.data_vars.items() if set(da.dims) <= {"chain", "draw"}]]
+            groups[group] = data.load()
+        return az.InferenceData(**groups)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]

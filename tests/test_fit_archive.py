@@ -111,6 +111,21 @@ def test_nutpie_trace_holds_only_the_requested_variables(small):
     assert trace.posterior["taste_sd"].shape[-1] == len(model.coords["random_attribute"])
 
 
+def test_nutpie_draws_go_through_a_temporary_store_that_is_removed(small, tmp_path, monkeypatch):
+    # nutpie keeps every draw's unconstrained point and gradient; hierchoice has it write them to a zarr
+    # store in a temporary folder (memory then stays flat as draws grow) and reads back only what it reports
+    import tempfile
+
+    _, panel, _ = small
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    result = hc.fit(panel, draws=30, tune=30, chains=2, seed=4, backend="nutpie", progressbar=False)
+    assert not list(tmp_path.glob("hierchoice-draws-*")), "the temporary store should be removed"
+    stats = result.idata.sample_stats
+    assert {"diverging", "n_steps", "energy"} <= set(stats.data_vars)
+    assert all(set(da.dims) <= {"chain", "draw"} for da in stats.data_vars.values())
+    assert result.posterior.sizes["draw"] == 30
+
+
 def test_fit_command_writes_a_results_folder(tmp_path, capsys):
     from hierchoice.demo import write_demo_data
 
