@@ -134,7 +134,7 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
         # a low-rank update of the diagonal mass matrix follows the correlations between
         # population parameters (constants vs taste means, correlations vs SDs)
         "low_rank_modified_mass_matrix": mass_matrix == "low_rank",
-        # per-draw copies of the unconstrained point, gradient and mass matrix would each grow with persons x draws
+        # hides nutpie's per-parameter arrays when it keeps its draws in memory (older nutpie, below)
         "store_unconstrained": False, "store_gradient": False, "store_mass_matrix": False, "store_divergences": False,
     }
     store_type = getattr(getattr(nutpie, "zarr_store", None), "LocalStore", None)
