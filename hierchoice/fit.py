@@ -240,9 +240,12 @@ def fit(
     method : {"nuts", "advi"}, default "nuts"
         ``"advi"`` fits a mean-field Gaussian approximation (Kucukelbir et al. 2017,
         JMLR 18) by stochastic optimisation and draws from it: minutes instead of
-        hours for panels beyond full NUTS on one machine (100,000 persons). Its
-        intervals are usually too narrow; the result is flagged ``approximate``
-        and the convergence checks do not apply to it.
+        hours for panels beyond full NUTS on one machine (100,000 persons). With
+        ``model.parameterization = "auto"`` (the default) it fits the centred model,
+        whose population means it places within 2 NUTS posterior SDs on the B1
+        benchmark (the non-centred one shrinks them; docs/performance.md). Its
+        intervals are too narrow; the result is flagged ``approximate`` and the
+        convergence checks do not apply to it.
     advi_iterations : int, default 15000
     person_batch : int, "auto" or None, default "auto"
         ADVI only: evaluate the likelihood on random batches of this many persons
