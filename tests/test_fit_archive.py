@@ -124,6 +124,7 @@ def test_nutpie_draws_go_through_a_temporary_store_that_is_removed(small, tmp_pa
     assert {"diverging", "n_steps", "energy"} <= set(stats.data_vars)
     assert all(set(da.dims) <= {"chain", "draw"} for da in stats.data_vars.values())
     assert result.posterior.sizes["draw"] == 30
+    assert not [g for g in result.idata.groups() if g.startswith("warmup")]  # the tuning phase is not read back
 
 
 def test_fit_command_writes_a_results_folder(tmp_path, capsys):
