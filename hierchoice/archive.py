@@ -54,7 +54,7 @@ def save_fit(result: ChoiceFit, out: str | Path, *, overwrite: bool = True, extr
     out = Path(out)
     idata = result.idata
     attrs = _attrs_for(result)
-    with atomic_dir(out, overwrite=overwrite) as tmp:
+    with atomic_dir(out, kind="results", overwrite=overwrite) as tmp:
         for group in idata.groups():
             getattr(idata, group).attrs.update(attrs if group == "posterior" else {})
         idata.to_netcdf(str(tmp / POSTERIOR_FILE), engine="h5netcdf")

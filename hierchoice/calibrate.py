@@ -62,7 +62,7 @@ from typing import Any, Protocol
 import numpy as np
 import xarray as xr
 
-from ._io import atomic_dir, write_with
+from ._io import atomic_dir, claim_folder, write_with
 from .checks import population_draws
 from .distributed import TaskFailure, run_tasks, task_seed, task_seed_sequence
 from .exceptions import ArchiveError, FitError, SpecError, first_few
@@ -1114,11 +1114,12 @@ def calibrate_command(data: str | Path, spec: str | Path, fits: int, out: str | 
     """
     from .diagnostic_plots import save_figure
 
+    claim_folder(out, "calibration", inputs=(data, spec))  # refuse before hours of fits, not after
     spec_obj = load_spec(spec)
     panel = load_panel(data, spec_obj)
     seed = spec_obj.sampling.seed if seed is None else seed
     result = simulation_based_calibration(panel, spec_obj, fits=fits, seed=seed, workers=workers)
-    with atomic_dir(out) as tmp:
+    with atomic_dir(out, kind="calibration", inputs=(data, spec)) as tmp:
         save_result(result, tmp / "calibration.nc")
         save_figure(plot_rank_histograms(result), tmp / "rank_histograms.png")
         save_figure(plot_ecdf_difference(result), tmp / "ecdf_difference.png")

@@ -24,11 +24,13 @@ def _cmd_validate(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
+    from ._io import claim_folder
     from .archive import save_fit
     from .fit import fit
     from .panel import load_panel
     from .spec import Spec
 
+    claim_folder(args.out, "results", inputs=(args.data, args.spec))  # refuse before the fit, not after
     spec = Spec.from_toml(args.spec)
     panel = load_panel(args.data, spec)
     print(panel.summary)
@@ -103,7 +105,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("fit", help="fit the hierarchical logit with NUTS and write a results folder")
     p.add_argument("data", help="long (or wide) CSV or Parquet file")
     p.add_argument("--spec", required=True, help="the TOML spec")
-    p.add_argument("--out", required=True, help="results folder (replaced atomically)")
+    p.add_argument("--out", required=True, help="results folder: a new one, or one that hierchoice wrote earlier (replaced whole, atomically)")
     p.add_argument("--draws", type=int, help="draws per chain (overrides [sampling])")
     p.add_argument("--tune", type=int, help="tuning steps per chain")
     p.add_argument("--chains", type=int, help="number of chains")

@@ -7,15 +7,15 @@ from pathlib import Path
 from .panel import ChoicePanel
 from .simulate import ferry_scenario
 from .spec import Spec, dumps_toml
-from ._io import atomic_write_text, write_with
+from ._io import atomic_write_text, make_folder, write_with
 
 __all__ = ["write_demo_data", "run_demo"]
 
 
 def write_demo_data(out: Path, *, persons: int = 300, seed: int = 7) -> tuple[Path, Path]:
     """Write the demo survey (``harbourline.csv``) and its spec (``harbourline.toml``) into ``out``."""
+    out = make_folder(out, "demo")
     sim = ferry_scenario(n_persons=persons, seed=seed)
-    out.mkdir(parents=True, exist_ok=True)
     data_path = write_with(out / "harbourline.csv", lambda tmp: sim.data.to_csv(tmp, index=False))
     header = (
         "# Harbourline commuter-ferry survey (invented demo data made by hierchoice.simulate).\n"

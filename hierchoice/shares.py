@@ -70,7 +70,7 @@ import pandas as pd
 import xarray as xr
 
 from ._io import write_with
-from .exceptions import DataError, FitError, SpecError, first_few
+from .exceptions import ArchiveError, DataError, FitError, SpecError, first_few
 from .fit import ChoiceFit
 from .likelihood import choice_probabilities
 from .panel import _label, read_table
@@ -547,8 +547,15 @@ def shares_command(
 
     Writes the table to ``out`` (CSV, atomically) when given, and returns it.
     """
-    from .archive import load_fit
+    from .archive import POSTERIOR_FILE, load_fit
 
+    if out is not None:
+        target = Path(out).resolve()
+        if target.is_dir():
+            raise ArchiveError(f"--out {str(out)!r} is a folder; give a CSV file name, e.g. shares.csv.")
+        if target == Path(market_csv).resolve() or target == (Path(folder) / POSTERIOR_FILE).resolve():
+            raise ArchiveError(f"--out {str(out)!r} is one of the inputs and would be overwritten; choose another "
+                               "file name for the share table.")
     result = load_fit(folder)
     table = predict_shares(result, market_csv, persons=persons, prob=prob)
     if out is not None:

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 import hierchoice as hc
+from hierchoice._io import MARKER
 from hierchoice.archive import load_fit, save_fit
 from hierchoice.cli import main
 
@@ -48,7 +49,7 @@ def test_log_likelihood_matches_person_tastes(small):
 def test_archive_round_trip(small, tmp_path):
     _, panel, result = small
     out = save_fit(result, tmp_path / "fit")
-    assert sorted(os.listdir(out)) == ["fit.log", "population.csv", "posterior.nc", "spec.toml"]
+    assert sorted(os.listdir(out)) == sorted([MARKER, "fit.log", "population.csv", "posterior.nc", "spec.toml"])
     again = load_fit(out)
     np.testing.assert_array_equal(again.posterior["person_taste"].values, result.posterior["person_taste"].values)
     np.testing.assert_array_equal(again.panel.X, panel.X)
