@@ -18,6 +18,7 @@ from scipy import stats
 
 import distributed  # the "distributed" extra: dask[distributed]
 import hierchoice as hc
+from hierchoice._io import MARKER
 from hierchoice import calibrate as cal
 from hierchoice.distributed import local_cluster, run_tasks, task_seed, task_seed_sequence
 from hierchoice.exceptions import FitError, SpecError
@@ -367,7 +368,7 @@ def test_calibrate_command_writes_the_folder(tmp_path, capsys):
     code = cal.calibrate_command(data, spec_path, fits=3, out=tmp_path / "out", workers=1, seed=5)
     assert code == 0  # 3 fits cannot reject uniformity at alpha = 0.01
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [
-        "calibration.nc", "ecdf_difference.png", "rank_histograms.png"]
+        MARKER, "calibration.nc", "ecdf_difference.png", "rank_histograms.png"]
     printed = capsys.readouterr().out
     assert "taste_mean[x]" in printed and "3 of 3 fits" in printed
     assert cal.load_result(tmp_path / "out" / "calibration.nc").sizes["fit"] == 3

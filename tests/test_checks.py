@@ -18,6 +18,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 import hierchoice as hc
+from hierchoice._io import MARKER
 from hierchoice import checks
 from hierchoice.checks import (
     EBFMI_MIN, ESS_MIN, RHAT_MAX, check_folder, convergence_checks, format_verdict, lognormal_sd_checks,
@@ -248,7 +249,7 @@ def test_check_folder_healthy_and_broken(healthy: ChoiceFit, tmp_path: Path,
     assert report["loo"]["person"]["n_data_points"] == healthy.panel.n_persons
     assert set(report["plots"]) == {"rank", "trace", "energy", "pair_mean_sd", "reliability", "ppc_shares"}
     _pngs_ok(good_dir, list(report["plots"].values()))
-    assert not [p.name for p in good_dir.iterdir() if p.name.startswith(".")]  # no temporary files left
+    assert not [p.name for p in good_dir.iterdir() if p.name.startswith(".") and p.name != MARKER]  # no temporary files left
     text = format_verdict(report)
     assert "no convergence check failed" in text and "hit rate" in text and "PSIS-LOO (person level)" in text
 
