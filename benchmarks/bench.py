@@ -17,10 +17,10 @@ naive
     What a user would write by hand: a per-row gather ``beta[person_index]``, ``pm.Categorical(logit_p=...)``,
     PyMC's default sampler; same priors on the same standardised attributes, same draws.
 default
-    ``hierchoice.fit`` with its defaults (nutpie, diagonal mass matrix, the fused likelihood Op), person draws
+    ``hierchoice.inference.sampling`` with its defaults (nutpie, diagonal mass matrix, the fused likelihood Op), person draws
     not stored.
 pymc
-    ``hierchoice.fit`` with PyMC's own NUTS (the same model, compiled by PyTensor's C backend).
+    ``hierchoice.inference.sampling`` with PyMC's own NUTS (the same model, compiled by PyTensor's C backend).
 default_x4
     ``default`` with four times the draws: its peak memory against ``default``'s shows whether memory grows with
     draws (it should not, with person draws not stored).
@@ -80,7 +80,7 @@ def _naive_model(panel):
     """The per-row gather model with pm.Categorical, on the same standardised attributes and priors."""
     import pymc as pm
 
-    from hierchoice.model import PRIOR_SD, model_layout
+    from hierchoice.model.build import PRIOR_SD, model_layout
 
     layout = model_layout(panel)
     p_idx, t_idx = np.nonzero(panel.task_mask)
@@ -270,8 +270,8 @@ def _model_gradient_fn(model, mode):
 
 def kernels(size_name: str) -> dict:
     """Milliseconds per log-posterior + gradient at ``size_name``: reference kernels and the model's graphs."""
-    from hierchoice.likelihood import difference_data
-    from hierchoice.model import build_model, model_layout
+    from hierchoice.model.likelihood import difference_data
+    from hierchoice.model.build import build_model, model_layout
 
     size = SIZES[size_name]
     sim, panel = _panel(size)
@@ -313,7 +313,7 @@ def kernels(size_name: str) -> dict:
 
 def scaling() -> list[dict]:
     """Cost of one log-posterior + gradient of the default model (fused Op, numba) as each dimension grows."""
-    from hierchoice.model import build_model
+    from hierchoice.model.build import build_model
 
     rows = []
     base = dict(n_persons=1000, n_tasks=10, n_alternatives=3, n_attributes=4, correlated=False)

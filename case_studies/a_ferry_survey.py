@@ -32,11 +32,11 @@ from pathlib import Path
 import pandas as pd
 
 import hierchoice as hc
-from hierchoice.checks import check_folder, format_verdict
-from hierchoice.report import write_report
-from hierchoice.shares import compare_shares, predict_shares
-from hierchoice.tastes import population_tastes, taste_shrinkage
-from hierchoice.wtp import population_wtp
+from hierchoice.diagnostics.folder import check_folder, format_verdict
+from hierchoice.report.html import write_report
+from hierchoice.analysis.shares import compare_shares, predict_shares
+from hierchoice.analysis.tastes import population_tastes, taste_shrinkage
+from hierchoice.analysis.wtp import population_wtp
 
 SCALE = os.environ.get("HIERCHOICE_CASE_SCALE", "full")
 if SCALE not in ("full", "ci"):

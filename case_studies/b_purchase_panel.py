@@ -36,9 +36,9 @@ import numpy as np
 import pandas as pd
 
 import hierchoice as hc
-from hierchoice.checks import check_folder, format_verdict
-from hierchoice.report import write_report
-from hierchoice.tastes import population_tastes
+from hierchoice.diagnostics.folder import check_folder, format_verdict
+from hierchoice.report.html import write_report
+from hierchoice.analysis.tastes import population_tastes
 
 SCALE = os.environ.get("HIERCHOICE_CASE_SCALE", "full")
 if SCALE not in ("full", "ci"):

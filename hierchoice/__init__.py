@@ -1,76 +1,94 @@
-"""hierchoice: Bayesian hierarchical (panel mixed) logit models for choice panels."""
+"""hierchoice: Bayesian hierarchical (panel mixed) logit models for choice panels.
 
-import logging as _logging
+The package is laid out as the pipeline it runs, each stage importing only the stages below it::
 
-# PyTensor warns at import when it links BLAS through NumPy (pip installs); the
-# message is about speed, not correctness, and would be the first thing users see.
-_logging.getLogger("pytensor.tensor.blas").setLevel(_logging.ERROR)
-import warnings as _warnings
+    spec, exceptions, _io, _records      the spec and the low helpers every stage uses
+    data/          table -> validated ChoicePanel; invented panels
+    model/         panel + spec -> PyMC model; the likelihood and its fused Op
+    inference/     sampling (fit) and the result object with its results folder
+    diagnostics/   convergence, predictive checks, LOO, plots, the check-folder job
+    analysis/      tastes, willingness-to-pay, shares
+    validation/    calibration, recovery and power (many fits, Dask)
+    report/        the HTML report
+    demo, cli      the command line
 
-_warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS installation", category=UserWarning)
+Importing the package loads no sampling backend (PyMC, PyTensor, nutpie, numba, JAX) and changes no global
+warning filter; those load on first use.
+"""
 
+from ._version import __version__
+from .analysis import (
+    compare_shares,
+    elasticities,
+    person_tastes,
+    person_wtp,
+    population_tastes,
+    population_wtp,
+    predict_shares,
+    sensitivity,
+)
+from .data import (
+    ChoicePanel,
+    SimAttribute,
+    SimulatedPanel,
+    Term,
+    ValidationSummary,
+    benchmark_scenario,
+    ferry_scenario,
+    load_panel,
+    long_to_wide,
+    read_table,
+    simulate_panel,
+    wide_to_long,
+)
+from .diagnostics import (
+    check_folder,
+    compare_models,
+    convergence_checks,
+    format_verdict,
+    hit_rate,
+    holdout_validation,
+    person_loo,
+    ppc_shares,
+    prior_predictive,
+    task_loo,
+)
 from .exceptions import ArchiveError, DataError, FitError, HierchoiceError, SpecError
-from .panel import ChoicePanel, Term, ValidationSummary, load_panel, long_to_wide, read_table, wide_to_long
-from .fit import ChoiceFit, fit, population_summary, task_log_likelihood
-from .archive import load_fit, save_fit
+from .inference import (
+    ChoiceFit,
+    fit,
+    load_fit,
+    population_summary,
+    save_fit,
+    task_log_likelihood,
+)
 from .model import build_model, model_layout
-from .checks import check_folder, convergence_checks, format_verdict
-from .compare import compare_models, person_loo, task_loo
-from .predictive import hit_rate, holdout_validation, ppc_shares, prior_predictive
-from .tastes import person_tastes, population_tastes
-from .wtp import person_wtp, population_wtp
-from .shares import compare_shares, elasticities, predict_shares, sensitivity
 from .report import write_report
-from .simulate import SimAttribute, SimulatedPanel, benchmark_scenario, ferry_scenario, simulate_panel
 from .spec import Spec, load_spec
-
-__version__ = "0.1.0"
+from .validation import (
+    parameter_recovery,
+    power_analysis,
+    rank_uniformity,
+    simulate_choices,
+    simulation_based_calibration,
+)
 
 __all__ = [
-    "ArchiveError",
-    "ChoiceFit",
-    "check_folder",
-    "compare_models",
-    "compare_shares",
-    "convergence_checks",
-    "elasticities",
-    "format_verdict",
-    "hit_rate",
-    "holdout_validation",
-    "person_loo",
-    "person_tastes",
-    "person_wtp",
-    "population_tastes",
-    "population_wtp",
-    "ppc_shares",
-    "predict_shares",
-    "prior_predictive",
-    "sensitivity",
-    "task_loo",
-    "write_report",
-    "build_model",
-    "fit",
-    "load_fit",
-    "model_layout",
-    "population_summary",
-    "save_fit",
+    "__version__",
+    # errors
+    "ArchiveError", "DataError", "FitError", "HierchoiceError", "SpecError",
+    # data and spec
+    "ChoicePanel", "Spec", "Term", "ValidationSummary", "load_panel", "load_spec", "long_to_wide", "read_table",
+    "wide_to_long", "SimAttribute", "SimulatedPanel", "benchmark_scenario", "ferry_scenario", "simulate_panel",
+    # model and inference
+    "build_model", "model_layout", "ChoiceFit", "fit", "load_fit", "population_summary", "save_fit",
     "task_log_likelihood",
-    "ChoicePanel",
-    "DataError",
-    "FitError",
-    "HierchoiceError",
-    "SimAttribute",
-    "SimulatedPanel",
-    "Spec",
-    "SpecError",
-    "Term",
-    "ValidationSummary",
-    "benchmark_scenario",
-    "ferry_scenario",
-    "load_panel",
-    "load_spec",
-    "long_to_wide",
-    "read_table",
-    "simulate_panel",
-    "wide_to_long",
+    # diagnostics
+    "check_folder", "compare_models", "convergence_checks", "format_verdict", "hit_rate", "holdout_validation",
+    "person_loo", "ppc_shares", "prior_predictive", "task_loo",
+    # analysis and report
+    "compare_shares", "elasticities", "person_tastes", "person_wtp", "population_tastes", "population_wtp",
+    "predict_shares", "sensitivity", "write_report",
+    # validation (many fits)
+    "parameter_recovery", "power_analysis", "rank_uniformity", "simulate_choices", "simulation_based_calibration",
 ]

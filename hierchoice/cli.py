@@ -1,4 +1,4 @@
-"""The ``hierchoice`` command line. It only parses arguments and calls the public API."""
+"""The ``hierchoice`` command line: every command's code. It parses arguments, calls the library, prints."""
 
 from __future__ import annotations
 
@@ -7,13 +7,13 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
-from .exceptions import HierchoiceError
+from .exceptions import ArchiveError, HierchoiceError
 
 EXIT_BAD_INPUT = 2
 
 
 def _cmd_validate(args: argparse.Namespace) -> int:
-    from .panel import load_panel
+    from .data.panel import load_panel
     from .spec import Spec
 
     spec = Spec.from_toml(args.spec)
@@ -25,9 +25,9 @@ def _cmd_validate(args: argparse.Namespace) -> int:
 
 def _cmd_fit(args: argparse.Namespace) -> int:
     from ._io import claim_folder
-    from .archive import save_fit
-    from .fit import fit
-    from .panel import load_panel
+    from .data.panel import load_panel
+    from .inference.results import save_fit
+    from .inference.sampling import fit
     from .spec import Spec
 
     claim_folder(args.out, "results", inputs=(args.data, args.spec))  # refuse before the fit, not after
@@ -46,7 +46,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .checks import check_folder, format_verdict
+    from .diagnostics.folder import check_folder, format_verdict
 
     report, code = check_folder(Path(args.folder))
     print(format_verdict(report))
@@ -55,7 +55,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from .report import write_report
+    from .report.html import write_report
 
     path = write_report(Path(args.folder), market=args.market, prob=args.prob)
     print(f"report: {path}")
@@ -63,9 +63,21 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_shares(args: argparse.Namespace) -> int:
-    from .shares import shares_command
+    from ._io import write_with
+    from .analysis.shares import predict_shares
+    from .inference.results import POSTERIOR_FILE, load_fit
 
-    table = shares_command(args.folder, args.market, args.out, persons=args.persons, prob=args.prob)
+    if args.out:
+        target = Path(args.out).resolve()
+        if target.is_dir():
+            raise ArchiveError(f"--out {args.out!r} is a folder; give a CSV file name, e.g. shares.csv.")
+        if target in (Path(args.market).resolve(), (Path(args.folder) / POSTERIOR_FILE).resolve()):
+            raise ArchiveError(f"--out {args.out!r} is one of the inputs and would be overwritten; choose another "
+                               "file name for the share table.")
+    result = load_fit(args.folder)
+    table = predict_shares(result, args.market, persons=args.persons, prob=args.prob)
+    if args.out:
+        write_with(Path(args.out), lambda tmp: table.to_csv(tmp, index=False))
     print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     for record in table.attrs.get("warnings", []):
         print(f"warning: {record.message}", file=sys.stderr)
@@ -75,9 +87,32 @@ def _cmd_shares(args: argparse.Namespace) -> int:
 
 
 def _cmd_calibrate(args: argparse.Namespace) -> int:
-    from .calibrate import calibrate_command
+    """Calibration on the user's own design; writes calibration.nc and two plots; exit 1 when a parameter is flagged."""
+    from ._io import atomic_dir, claim_folder
+    from .data.panel import load_panel
+    from .diagnostics.plots import save_figure
+    from .spec import load_spec
+    from .validation import (
+        format_calibration,
+        plot_ecdf_difference,
+        plot_rank_histograms,
+        save_result,
+        simulation_based_calibration,
+    )
 
-    return calibrate_command(args.data, args.spec, args.fits, args.out, args.workers, args.seed)
+    inputs = (args.data, args.spec)
+    claim_folder(args.out, "calibration", inputs=inputs)  # refuse before hours of fits, not after
+    spec = load_spec(args.spec)
+    panel = load_panel(args.data, spec)
+    seed = spec.sampling.seed if args.seed is None else args.seed
+    result = simulation_based_calibration(panel, spec, fits=args.fits, seed=seed, workers=args.workers)
+    with atomic_dir(args.out, kind="calibration", inputs=inputs) as tmp:
+        save_result(result, tmp / "calibration.nc")
+        save_figure(plot_rank_histograms(result), tmp / "rank_histograms.png")
+        save_figure(plot_ecdf_difference(result), tmp / "ecdf_difference.png")
+    print(format_calibration(result))
+    print(f"\nresults written to {args.out}/ (calibration.nc, rank_histograms.png, ecdf_difference.png)")
+    return 1 if bool(result["flagged"].any()) else 0
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
@@ -92,7 +127,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="hierchoice",
         description="Bayesian hierarchical choice models for panel choice data.",
     )
-    from . import __version__
+    from ._version import __version__
 
     parser.add_argument("--version", action="version", version=f"hierchoice {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)

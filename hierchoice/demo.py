@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .panel import ChoicePanel
-from .simulate import ferry_scenario
-from .spec import Spec, dumps_toml
 from ._io import atomic_write_text, make_folder, write_with
+from .data.panel import ChoicePanel
+from .data.simulate import ferry_scenario
+from .spec import Spec, dumps_toml
 
 __all__ = ["write_demo_data", "run_demo"]
 
@@ -35,10 +35,10 @@ none,,,,
 
 def run_demo(out: Path, *, persons: int = 300, quick: bool = False, seed: int = 7) -> Path:
     """The whole job on the demo: simulate, validate, fit, check, report. Returns the report's path."""
-    from .archive import save_fit
-    from .checks import check_folder, format_verdict
-    from .fit import fit
-    from .report import write_report
+    from .diagnostics.folder import check_folder, format_verdict
+    from .inference.results import save_fit
+    from .inference.sampling import fit
+    from .report.html import write_report
 
     out = Path(out)
     if quick:

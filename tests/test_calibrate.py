@@ -19,8 +19,8 @@ from scipy import stats
 import distributed  # the "distributed" extra: dask[distributed]
 import hierchoice as hc
 from hierchoice._io import MARKER
-from hierchoice import calibrate as cal
-from hierchoice.distributed import local_cluster, run_tasks, task_seed, task_seed_sequence
+from hierchoice import validation as cal
+from hierchoice.validation.distributed import local_cluster, run_tasks, task_seed, task_seed_sequence
 from hierchoice.exceptions import FitError, SpecError
 
 #: Short chains: enough for this one-attribute model (median bulk ESS of 100 draws is about 50-100).
@@ -348,7 +348,7 @@ def test_results_save_as_netcdf_and_plot(sbc_nuts, tmp_path):
     back = cal.load_result(path)
     np.testing.assert_array_equal(back["rank"].values, sbc_nuts["rank"].values)
     assert back["flagged"].dtype == bool and back.attrs["thin_to"] == THIN_TO
-    from hierchoice.diagnostic_plots import save_figure
+    from hierchoice.diagnostics.plots import save_figure
 
     for name, fig in (("ranks.png", cal.plot_rank_histograms(back)), ("ecdf.png", cal.plot_ecdf_difference(back))):
         out = save_figure(fig, tmp_path / name)
@@ -365,7 +365,10 @@ def test_calibrate_command_writes_the_folder(tmp_path, capsys):
     spec = dict(sim.spec) | {"sampling": {"draws": 40, "tune": 40, "chains": 1, "backend": "pymc"}}
     spec_path = tmp_path / "spec.toml"
     spec_path.write_text(hc.Spec.from_dict(spec).to_toml())
-    code = cal.calibrate_command(data, spec_path, fits=3, out=tmp_path / "out", workers=1, seed=5)
+    from hierchoice.cli import main
+
+    code = main(["calibrate", str(data), "--spec", str(spec_path), "--fits", "3", "--out", str(tmp_path / "out"),
+                 "--workers", "1", "--seed", "5"])
     assert code == 0  # 3 fits cannot reject uniformity at alpha = 0.01
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [
         MARKER, "calibration.nc", "ecdf_difference.png", "rank_histograms.png"]

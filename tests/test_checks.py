@@ -19,13 +19,14 @@ from hypothesis import strategies as st
 
 import hierchoice as hc
 from hierchoice._io import MARKER
-from hierchoice import checks
-from hierchoice.checks import (
-    EBFMI_MIN, ESS_MIN, RHAT_MAX, check_folder, convergence_checks, format_verdict, lognormal_sd_checks,
-    overall_verdict, parameter_diagnostics, population_draws, sampler_checks,
+from hierchoice.diagnostics import checks
+from hierchoice.diagnostics.checks import (
+    EBFMI_MIN, ESS_MIN, RHAT_MAX, convergence_checks, lognormal_sd_checks, overall_verdict, parameter_diagnostics,
+    population_draws, sampler_checks,
 )
-from hierchoice.fit import ChoiceFit
-from hierchoice.model import model_layout
+from hierchoice.diagnostics.folder import check_folder, format_verdict
+from hierchoice.inference.results import ChoiceFit
+from hierchoice.model.build import model_layout
 
 
 @pytest.fixture(scope="module")

@@ -19,11 +19,12 @@ from numpy.polynomial.hermite_e import hermegauss
 from scipy.special import logsumexp
 
 from hierchoice import ChoicePanel, FitError, SimAttribute, simulate_panel
-from hierchoice.compare import (
+from hierchoice.diagnostics.loo import (
     PERSON_LOGLIK, compare_models, pareto_k_checks, person_log_marginal, person_loo, task_loo,
 )
-from hierchoice.fit import ChoiceFit, add_log_likelihood
-from hierchoice.model import model_layout
+from hierchoice.inference.sampling import add_log_likelihood
+from hierchoice.inference.results import ChoiceFit
+from hierchoice.model.build import model_layout
 
 N_CHAINS, N_DRAWS = 2, 3
 

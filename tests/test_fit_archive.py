@@ -7,7 +7,7 @@ import pytest
 
 import hierchoice as hc
 from hierchoice._io import MARKER
-from hierchoice.archive import load_fit, save_fit
+from hierchoice.inference.results import load_fit, save_fit
 from hierchoice.cli import main
 
 
@@ -39,7 +39,7 @@ def test_log_likelihood_matches_person_tastes(small):
     _, panel, result = small
     ll = result.idata.log_likelihood["chosen"].isel(chain=0, draw=3).values
     beta = result.posterior["person_taste"].isel(chain=0, draw=3).values
-    from hierchoice.likelihood import choice_probabilities
+    from hierchoice.model.likelihood import choice_probabilities
 
     p = choice_probabilities(panel.X, panel.available, beta)
     pp, tt = np.nonzero(panel.task_mask)
@@ -64,7 +64,7 @@ def test_interrupted_write_keeps_the_earlier_folder(small, tmp_path, monkeypatch
     _, _, result = small
     out = save_fit(result, tmp_path / "fit")
     before = (out / "population.csv").read_text()
-    import hierchoice.archive as archive
+    import hierchoice.inference.results as archive
 
     def boom(*args, **kwargs):
         raise RuntimeError("disk full")
@@ -98,7 +98,7 @@ def test_without_person_draws(small):
 def test_nutpie_trace_holds_only_the_requested_variables(small):
     # nutpie would store every free variable with each draw (the person deviations included), so memory
     # grew with persons x draws even without person draws; the trimmed compile stores what is asked for
-    from hierchoice.nutpie_compile import compile_nutpie
+    from hierchoice.inference.nutpie_compile import compile_nutpie
 
     _, panel, _ = small
     model = hc.build_model(panel)
@@ -213,7 +213,7 @@ def test_numpyro_backend_runs_on_the_cpu():
 def test_missing_backend_is_a_clean_error(monkeypatch):
     import importlib.util
 
-    from hierchoice.fit import resolve_backend
+    from hierchoice.inference.sampling import resolve_backend
 
     real = importlib.util.find_spec
     monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "numpyro" else real(name, *a))

@@ -6,7 +6,7 @@ import pytensor.tensor as pt
 import pytest
 from scipy.special import expit, log_softmax
 
-from hierchoice.likelihood import (
+from hierchoice.model.likelihood import (
     choice_probabilities,
     difference_data,
     task_loglik_graph,

@@ -14,8 +14,8 @@ from scipy.special import log_softmax
 from test_likelihood import _random_panel
 
 import hierchoice as hc
-from hierchoice.likelihood import difference_data, task_loglik_graph, task_loglik_numpy
-from hierchoice.logit_op import (
+from hierchoice.model.likelihood import difference_data, task_loglik_graph, task_loglik_numpy
+from hierchoice.model.logit_op import (
     _exp_nonpositive,
     _log_positive,
     jax_loglik_and_grad,
@@ -24,7 +24,7 @@ from hierchoice.logit_op import (
     panel_logit_loglik,
     register_jax,
 )
-from hierchoice.model import build_model
+from hierchoice.model.build import build_model
 
 
 def test_vector_exp_matches_numpy_to_rounding():

@@ -10,7 +10,7 @@ from scipy.special import log_softmax
 
 import hierchoice as hc
 from hierchoice.exceptions import SpecError
-from hierchoice.model import build_model
+from hierchoice.model.build import build_model
 
 
 def _fn(model, names):

@@ -15,9 +15,9 @@ import pandas as pd
 import pytest
 
 from hierchoice import ChoicePanel, DataError, SimAttribute, SpecError, ferry_scenario, simulate_panel
-from hierchoice.fit import ChoiceFit
-from hierchoice.model import model_layout
-from hierchoice.predictive import (
+from hierchoice.inference.results import ChoiceFit
+from hierchoice.model.build import model_layout
+from hierchoice.diagnostics.predictive import (
     fixed_taste_spec, hit_rate, holdout_split, holdout_validation, posterior_choice_probabilities, ppc_shares,
     prior_predictive, reliability, score_tasks,
 )

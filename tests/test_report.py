@@ -12,9 +12,9 @@ import pandas as pd
 import pytest
 
 import hierchoice as hc
-import hierchoice.report as report_module
+import hierchoice.report.html as report_module
 from hierchoice import SimAttribute, SpecError
-from hierchoice.report import REPORT_FILE, convergence_status, write_report
+from hierchoice.report.html import REPORT_FILE, convergence_status, write_report
 from test_tastes import fake_fit, small_panel
 
 VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
@@ -157,12 +157,12 @@ def _sections_after_job(page: str) -> list[str]:
 
 
 def test_failing_checks_module_gives_not_checked(fake_folder: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    import hierchoice.checks
+    import hierchoice.diagnostics.folder
 
     def broken(folder: Any, *, out: Any = None) -> Any:
         raise RuntimeError("disk on fire")
 
-    monkeypatch.setattr(hierchoice.checks, "check_folder", broken)
+    monkeypatch.setattr(hierchoice.diagnostics.folder, "check_folder", broken)
     page = write_report(fake_folder).read_text(encoding="utf-8")
     assert_self_contained(page)
     banner = page[page.index("class='verdict"):page.index("<section")]
@@ -171,7 +171,7 @@ def test_failing_checks_module_gives_not_checked(fake_folder: Path, monkeypatch:
 
 
 def test_missing_checks_module_gives_not_checked(fake_folder: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setitem(sys.modules, "hierchoice.checks", None)  # import now raises ImportError
+    monkeypatch.setitem(sys.modules, "hierchoice.diagnostics.folder", None)  # import now raises ImportError
     status = convergence_status(fake_folder)
     assert status["verdict"] == "not checked" and "not available" in status["reason"]
     page = write_report(fake_folder).read_text(encoding="utf-8")
@@ -203,18 +203,18 @@ def test_passing_verdict_and_stale_diagnostics(fake_folder: Path, monkeypatch: p
     # a diagnostics.json from another fit is not trusted: the checks run again
     _diagnostics(fake_folder, "pass", wall_seconds=123.0)
     calls = []
-    import hierchoice.checks
+    import hierchoice.diagnostics.folder
 
     def fake_check(folder: Any, *, out: Any = None) -> Any:
         calls.append(folder)
         return {"verdict": "warn", "checks": []}, 0
 
-    monkeypatch.setattr(hierchoice.checks, "check_folder", fake_check)
+    monkeypatch.setattr(hierchoice.diagnostics.folder, "check_folder", fake_check)
     assert convergence_status(fake_folder, hc.load_fit(fake_folder))["verdict"] == "warn" and calls
 
 
 def test_report_without_price_or_person_draws(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setitem(sys.modules, "hierchoice.checks", None)
+    monkeypatch.setitem(sys.modules, "hierchoice.diagnostics.folder", None)
     fit = fake_fit(small_panel(), {"price": 0.0, "time": -0.05}, {"price": 0.3, "time": 0.02},
                    person_draws=False)
     folder = hc.save_fit(fit, tmp_path / "results")

@@ -10,14 +10,13 @@ import pytest
 
 import hierchoice as hc
 from hierchoice import DataError, FitError, SimAttribute, SpecError
-from hierchoice.shares import (
+from hierchoice.analysis.shares import (
     compare_shares,
     elasticities,
     market_design,
     predict_shares,
     sensitivity,
     share_draws,
-    shares_command,
 )
 from test_tastes import fake_fit, small_panel
 
@@ -248,7 +247,10 @@ def test_shares_command_reads_a_folder_and_writes_csv(tmp_path: Any) -> None:
     market_csv = tmp_path / "market.csv"
     MARKET.to_csv(market_csv, index=False)
     out = tmp_path / "shares.csv"
-    table = shares_command(folder, market_csv, out)
+    from hierchoice.cli import main
+
+    assert main(["shares", str(folder), "--market", str(market_csv), "--out", str(out)]) == 0
+    table = hc.predict_shares(hc.load_fit(folder), market_csv)
     back = pd.read_csv(out)
     assert list(back["alternative"]) == ["a", "b", "c"]
     assert np.allclose(back["median"], table["median"]) and back["median"].sum() == pytest.approx(1.0)

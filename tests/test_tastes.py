@@ -18,9 +18,10 @@ import xarray as xr
 from scipy import stats
 
 from hierchoice import ChoicePanel, FitError, SimAttribute, SpecError, simulate_panel
-from hierchoice.fit import ChoiceFit, _tidy_idata
-from hierchoice.model import model_layout
-from hierchoice.tastes import (
+from hierchoice.inference.sampling import _tidy_idata
+from hierchoice.inference.results import ChoiceFit
+from hierchoice.model.build import model_layout
+from hierchoice.analysis.tastes import (
     person_latent_draws,
     person_tastes,
     population_taste_draws,

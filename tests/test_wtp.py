@@ -9,7 +9,7 @@ import pytest
 
 import hierchoice as hc
 from hierchoice import SimAttribute, SpecError
-from hierchoice.wtp import person_wtp, person_wtp_draws, population_wtp, population_wtp_draws, wtp_units
+from hierchoice.analysis.wtp import person_wtp, person_wtp_draws, population_wtp, population_wtp_draws, wtp_units
 from test_tastes import fake_fit, small_panel
 
 # --------------------------------------------------------------------------- recovery (one real fit)

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .exceptions import SpecError
+from ..exceptions import SpecError
 
 __all__ = ["SimAttribute", "SimulatedPanel", "simulate_panel", "ferry_scenario", "benchmark_scenario",
            "draw_choices"]

@@ -31,8 +31,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .exceptions import DataError, first_few
-from .spec import Spec, load_spec
+from ..exceptions import DataError, first_few
+from ..spec import Spec, load_spec
 
 __all__ = ["Term", "ValidationSummary", "ChoicePanel", "read_table", "wide_to_long", "long_to_wide", "load_panel"]
 
@@ -360,7 +360,7 @@ class ChoicePanel:
         """
         from dataclasses import replace as _replace
 
-        from .exceptions import SpecError
+        from ..exceptions import SpecError
 
         spec = load_spec(spec)
         if spec == self.spec:

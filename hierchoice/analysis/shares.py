@@ -69,11 +69,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ._io import write_with
-from .exceptions import ArchiveError, DataError, FitError, SpecError, first_few
-from .fit import ChoiceFit
-from .likelihood import choice_probabilities
-from .panel import _label, read_table
+from ..data.panel import _label, read_table
+from ..exceptions import DataError, FitError, SpecError, first_few
+from ..inference.results import ChoiceFit
+from ..model.likelihood import choice_probabilities
 from .tastes import (
     DEFAULT_PROB,
     WarningRecord,
@@ -95,7 +94,6 @@ __all__ = [
     "sensitivity",
     "elasticities",
     "compare_shares",
-    "shares_command",
 ]
 
 #: The two ways to integrate over people's tastes.
@@ -537,27 +535,3 @@ def compare_shares(
     table.insert(1, "base", sb.median(("chain", "draw")).values)
     table.insert(2, "scenario", ss.median(("chain", "draw")).values)
     return _finish(table, prob, persons, Xb.attrs["warnings"] + Xs.attrs["warnings"])
-
-
-def shares_command(
-    folder: str | Path, market_csv: str | Path, out: str | Path | None = None, *, persons: str = "population",
-    prob: float = DEFAULT_PROB,
-) -> pd.DataFrame:
-    """Predicted shares of the market in ``market_csv`` under the fit in ``folder`` (for the CLI).
-
-    Writes the table to ``out`` (CSV, atomically) when given, and returns it.
-    """
-    from .archive import POSTERIOR_FILE, load_fit
-
-    if out is not None:
-        target = Path(out).resolve()
-        if target.is_dir():
-            raise ArchiveError(f"--out {str(out)!r} is a folder; give a CSV file name, e.g. shares.csv.")
-        if target == Path(market_csv).resolve() or target == (Path(folder) / POSTERIOR_FILE).resolve():
-            raise ArchiveError(f"--out {str(out)!r} is one of the inputs and would be overwritten; choose another "
-                               "file name for the share table.")
-    result = load_fit(folder)
-    table = predict_shares(result, market_csv, persons=persons, prob=prob)
-    if out is not None:
-        write_with(Path(out), lambda tmp: table.to_csv(tmp, index=False))
-    return table

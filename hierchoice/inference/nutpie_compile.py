@@ -20,6 +20,8 @@ import logging
 from collections.abc import Sequence
 from typing import Any
 
+from .._backend import load_backend
+
 log = logging.getLogger("hierchoice")
 
 __all__ = ["compile_nutpie"]
@@ -60,6 +62,7 @@ def _trim_expand(model, built, var_names, kwargs):  # type: ignore[no-untyped-de
     keep = [i for i, name in enumerate(names) if name in var_names]
     if not kwargs.get("join_expanded", True) or len(keep) == len(names) or not keep:
         return n_free, n_expanded, logp_fn, expand_fn, init_fn, (names, slices, shapes)
+    load_backend()
     import pytensor
     import pytensor.tensor as pt
     from pymc.pytensorf import compile as compile_pymc

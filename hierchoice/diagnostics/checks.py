@@ -48,19 +48,17 @@ Learning Research* 15, 1593–1623.
 
 from __future__ import annotations
 
-import json
 import math
 import warnings
-from collections.abc import Iterable, Sequence
-from dataclasses import asdict, dataclass
-from pathlib import Path
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .model import POPULATION_VARS, ModelLayout
+from .._records import VERDICTS, Check, checks_frame, overall_verdict
+from ..model.build import POPULATION_VARS, ModelLayout
 
 __all__ = [
     "RHAT_MAX",
@@ -82,8 +80,6 @@ __all__ = [
     "convergence_checks",
     "checks_frame",
     "overall_verdict",
-    "check_folder",
-    "format_verdict",
 ]
 
 #: R-hat (rank-normalised split) below this passes (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021).
@@ -108,57 +104,12 @@ LOG_SD_LARGE = 2.0
 FOLDER_N_SIM = 100
 FOLDER_MAX_DRAWS = 200
 
-VERDICTS = ("pass", "warn", "fail")
-_RANK = {v: i for i, v in enumerate(VERDICTS)}
 
 _REF_RHAT = "Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021), Bayesian Analysis 16(2)"
 _REF_EBFMI = "Betancourt (2017), arXiv:1701.02434, section 6.1"
 _REF_DIV = "Betancourt (2017), arXiv:1701.02434, section 6.2"
 _REF_DEPTH = "Hoffman & Gelman (2014), JMLR 15; common practice"
 _REF_COMMON = "common practice"
-
-
-@dataclass(frozen=True)
-class Check:
-    """One graded diagnostic.
-
-    Attributes
-    ----------
-    check : str
-        What was measured (``rhat``, ``ess_bulk``, ``divergences``, ...).
-    subject : str
-        Which quantity: a variable (``taste_sd``), its worst element (``taste_sd[fare]``),
-        ``sampler`` or ``person_taste``.
-    value : float
-        The measured value (NaN when it could not be computed).
-    threshold : float
-        The pass threshold; ``rule`` says in which direction.
-    rule : str
-        The pass rule as text, e.g. ``"value < 1.01"``.
-    verdict : {"pass", "warn", "fail"}
-    advice : str
-        What to do about it, in plain words; empty on a pass.
-    reference : str
-        Where the threshold comes from.
-    detail : str
-        Extra facts (which element, how many over the threshold).
-    """
-
-    check: str
-    subject: str
-    value: float
-    threshold: float
-    rule: str
-    verdict: str
-    advice: str = ""
-    reference: str = ""
-    detail: str = ""
-
-    def to_dict(self) -> dict[str, Any]:
-        out = asdict(self)
-        out["value"] = _json_number(self.value)
-        out["threshold"] = _json_number(self.threshold)
-        return out
 
 
 # --------------------------------------------------------------------------- grading kernels
@@ -176,20 +127,6 @@ def _grade_lower(value: float, ok: float, bad: float) -> str:
     if not np.isfinite(value):
         return "warn"
     return "pass" if value >= ok else "warn" if value >= bad else "fail"
-
-
-def overall_verdict(checks: Iterable[Check]) -> str:
-    """The worst verdict among ``checks`` (``"pass"`` when there are none)."""
-    worst = 0
-    for c in checks:
-        worst = max(worst, _RANK[c.verdict])
-    return VERDICTS[worst]
-
-
-def checks_frame(checks: Sequence[Check]) -> pd.DataFrame:
-    """The records as a tidy table, one row per check."""
-    cols = ["check", "subject", "value", "threshold", "rule", "verdict", "advice", "reference", "detail"]
-    return pd.DataFrame([asdict(c) for c in checks], columns=cols)
 
 
 # --------------------------------------------------------------------------- population parameters
@@ -551,176 +488,3 @@ def convergence_checks(result: Any, *, layout: ModelLayout | None = None,
 # --------------------------------------------------------------------------- the results folder
 
 
-def _json_number(value: Any) -> Any:
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        return value
-    if not math.isfinite(f):
-        return None
-    return int(f) if isinstance(value, (int, np.integer)) and not isinstance(value, bool) else f
-
-
-def _jsonable(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, pd.DataFrame):
-        return _jsonable(obj.reset_index().to_dict(orient="records"))
-    if isinstance(obj, pd.Series):
-        return _jsonable(obj.to_dict())
-    if isinstance(obj, np.ndarray):
-        return _jsonable(obj.tolist())
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, float, np.integer, np.floating)):
-        return _json_number(obj)
-    if obj is None or isinstance(obj, str):
-        return obj
-    return str(obj)
-
-
-THRESHOLDS = {
-    "rhat": {"pass_below": RHAT_MAX, "fail_at": RHAT_FAIL, "reference": _REF_RHAT + "; 1.05: common practice"},
-    "ess_bulk": {"pass_at": ESS_MIN, "fail_below": ESS_FAIL, "reference": _REF_RHAT + "; 100: common practice"},
-    "ess_tail": {"pass_at": ESS_MIN, "fail_below": ESS_FAIL, "reference": _REF_RHAT + "; 100: common practice"},
-    "ebfmi": {"pass_at": EBFMI_MIN, "reference": _REF_EBFMI},
-    "divergences": {"pass_at_most": 0, "reference": _REF_DIV},
-    "tree_depth": {"pass_at_most": 0.0, "reference": _REF_DEPTH},
-    "lognormal_sd": {"warn_below": LOG_SD_COLLAPSED, "warn_above": LOG_SD_LARGE, "reference": _REF_COMMON},
-}
-
-
-def check_folder(folder: str | Path, *, out: str | Path | None = None) -> tuple[dict[str, Any], int]:
-    """Check a results folder: convergence verdict, predictive summary, LOO, plots and ``diagnostics.json``.
-
-    Loads the fit (:func:`hierchoice.archive.load_fit`), grades every convergence
-    check, computes the in-sample hit rate, reliability table and posterior-predictive
-    shares (:mod:`hierchoice.predictive`), task- and person-level PSIS-LOO
-    (:mod:`hierchoice.compare`), and writes ``diagnostics.json`` and the diagnostic
-    plots (PNG) atomically. Prints nothing.
-
-    Parameters
-    ----------
-    folder : path
-        A results folder written by :func:`hierchoice.save_fit`.
-    out : path, optional
-        Where to write ``diagnostics.json`` and the plots; defaults to ``folder``.
-
-    Returns
-    -------
-    report : dict
-        JSON-ready: ``verdict``, ``checks`` (every check with value, threshold, verdict
-        and advice), ``parameters``, ``predictive``, ``loo``, ``plots``, ``thresholds``.
-    exit_code : int
-        0 when no convergence check failed, 1 otherwise (warnings do not count).
-    """
-    from ._io import atomic_write_text
-    from .archive import load_fit
-    from .compare import person_loo, pareto_k_checks, task_loo
-    from .diagnostic_plots import write_diagnostic_plots
-    from .predictive import hit_rate, posterior_choice_probabilities, ppc_shares, reliability
-
-    folder = Path(folder)
-    target = Path(out) if out is not None else folder
-    result = load_fit(folder)
-    report: dict[str, Any] = {"folder": str(folder), "fit": dict(result.info), "notes": []}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        table = parameter_diagnostics(result.idata)
-        checks = convergence_checks(result, table=table)
-        report["verdict"] = overall_verdict(checks)
-        report["checks"] = [c.to_dict() for c in checks]
-        report["parameters"] = table
-        report["thresholds"] = THRESHOLDS
-
-        rel = shares = None
-        if result.has_person_draws:
-            prob = posterior_choice_probabilities(result)
-            hr = hit_rate(result, probabilities=prob)
-            rel = reliability(result, probabilities=prob)
-            shares = ppc_shares(result, seed=0)
-            n = rel["n"].sum()
-            report["predictive"] = {
-                "hit_rate": hr.to_dict(),
-                "calibration_error": float((rel["n"] * (rel["observed"] - rel["mean_predicted"]).abs()).sum() / n),
-                "reliability": rel,
-                "shares": shares,
-                "shares_outside_interval": int(shares["outside"].sum()),
-            }
-            loo_t = task_loo(result)
-            loo_p, mc = person_loo(result, n_sim=FOLDER_N_SIM, max_draws=FOLDER_MAX_DRAWS, seed=0,
-                                   return_estimate=True)
-            k_checks = pareto_k_checks(loo_t, "task") + pareto_k_checks(loo_p, "person")
-            report["loo"] = {
-                "task": _loo_dict(loo_t),
-                "person": _loo_dict(loo_p) | {"mean_mc_se": float(mc["mc_se"].mean()), "n_sim": FOLDER_N_SIM,
-                                               "max_draws": FOLDER_MAX_DRAWS},
-                "checks": [c.to_dict() for c in k_checks],
-            }
-        else:
-            report["notes"].append("the fit stores no person draws: hit rate, PPC and LOO were skipped")
-        plots = write_diagnostic_plots(result, target, reliability_table=rel, shares_table=shares, table=table)
-        report["plots"] = {name: path.name for name, path in plots.items()}
-    code = 1 if any(c.verdict == "fail" for c in checks) else 0
-    report["exit_code"] = code
-    report = _jsonable(report)
-    atomic_write_text(target / "diagnostics.json", json.dumps(report, indent=2) + "\n")
-    return report, code
-
-
-def _loo_dict(loo: Any) -> dict[str, Any]:
-    k = np.asarray(loo["pareto_k"]).ravel()
-    return {
-        "elpd_loo": float(loo["elpd_loo"]), "se": float(loo["se"]), "p_loo": float(loo["p_loo"]),
-        "n_data_points": int(loo["n_data_points"]), "n_samples": int(loo["n_samples"]),
-        "good_k": float(loo["good_k"]), "n_bad_k": int((k > float(loo["good_k"])).sum()),
-        "max_k": float(np.max(k)) if k.size else None,
-    }
-
-
-_MARK = {"pass": "PASS", "warn": "WARN", "fail": "FAIL"}
-
-
-def format_verdict(report: dict[str, Any]) -> str:
-    """A plain-text account of a :func:`check_folder` report, for printing."""
-    lines = [f"convergence verdict: {report.get('verdict', '?').upper()}"
-             f"  ({report.get('folder', '')})", ""]
-    checks = report.get("checks", [])
-    width = max((len(f"{c['check']} {c['subject']}") for c in checks), default=10)
-    for c in checks:
-        value = c["value"]
-        shown = "n/a" if value is None else f"{value:.4g}"
-        name = f"{c['check']} {c['subject']}"
-        lines.append(f"  {_MARK[c['verdict']]}  {name:<{width}}  {shown:>9}   ({c['rule']})")
-    todo = [c for c in checks if c["verdict"] != "pass" and c.get("advice")]
-    if todo:
-        lines += ["", "what to do:"]
-        for c in todo:
-            lines.append(f"  - [{c['check']} {c['subject']}] {c['advice']}")
-    pred = report.get("predictive")
-    if pred:
-        hr = pred["hit_rate"]
-        lines += ["", f"in-sample hit rate {hr['hit_rate']:.3f} (chance {hr['chance_rate']:.3f}, "
-                      f"{int(hr['n_tasks'])} tasks); calibration error {pred['calibration_error']:.3f}; "
-                      f"{pred['shares_outside_interval']} of {len(pred['shares'])} predicted shares outside "
-                      "their 90% interval"]
-    loo = report.get("loo")
-    if loo:
-        for level in ("task", "person"):
-            d = loo[level]
-            lines.append(f"PSIS-LOO ({level} level): elpd {d['elpd_loo']:.1f} (se {d['se']:.1f}), p_loo "
-                         f"{d['p_loo']:.1f}, {d['n_bad_k']} of {d['n_data_points']} Pareto k > {d['good_k']:.2f}")
-        for c in loo.get("checks", []):
-            if c["verdict"] != "pass":
-                lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
-    for note in report.get("notes", []):
-        lines.append(f"note: {note}")
-    if report.get("plots"):
-        lines += ["", "plots: " + ", ".join(report["plots"].values())]
-    code = report.get("exit_code")
-    if code is not None:
-        lines += ["", "no convergence check failed" if code == 0 else
-                  "some convergence checks FAILED: do not read the results until they pass"]
-    return "\n".join(lines)

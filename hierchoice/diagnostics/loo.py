@@ -51,10 +51,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .checks import Check
-from .exceptions import FitError, SpecError, first_few
-from .likelihood import difference_data, task_loglik_numpy
-from .model import POPULATION_VARS
+from .._records import Check
+from ..exceptions import FitError, SpecError, first_few
+from ..model.build import POPULATION_VARS
+from ..model.likelihood import difference_data, task_loglik_numpy
 
 __all__ = ["PERSON_LOGLIK", "PARETO_K_UNUSABLE", "task_loo", "person_log_marginal", "person_loo", "pareto_k_checks",
            "compare_models"]
@@ -91,7 +91,7 @@ def task_loo(result: Any) -> Any:
                 "task_loo needs the task-level log-likelihood or the person tastes; this fit stored neither "
                 "(refit with sampling.store_person_draws = true)."
             )
-        from .fit import add_log_likelihood
+        from ..inference.sampling import add_log_likelihood
 
         add_log_likelihood(result)
     return _loo(result.idata, "chosen")

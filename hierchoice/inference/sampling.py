@@ -10,25 +10,24 @@ the task-level log_likelihood) with the panel and the spec it came from.
 from __future__ import annotations
 
 import importlib.util
-import json
 import logging
 import time
 from collections.abc import Mapping
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-import pandas as pd
 import xarray as xr
 
-from .exceptions import FitError, SpecError
-from .likelihood import difference_data, task_loglik_numpy
-from .model import POPULATION_VARS, ModelLayout, build_model, model_layout
-from .panel import ChoicePanel
-from .spec import Spec, load_spec
+from .._backend import load_backend
+from ..data.panel import ChoicePanel
+from ..exceptions import FitError, SpecError
+from ..model.build import POPULATION_VARS, build_model, model_layout
+from ..model.likelihood import difference_data, task_loglik_numpy
+from ..spec import Spec, load_spec
+from .results import ChoiceFit
 
-__all__ = ["ChoiceFit", "fit", "resolve_backend", "task_log_likelihood", "population_summary"]
+__all__ = ["fit", "resolve_backend", "task_log_likelihood", "add_log_likelihood", "REPORTED_VARS"]
 
 log = logging.getLogger("hierchoice")
 
@@ -50,64 +49,8 @@ def resolve_backend(name: str) -> str:
     return name
 
 
-@dataclass
-class ChoiceFit:
-    """A fitted panel mixed logit: the posterior, the panel and the spec.
-
-    Attributes
-    ----------
-    idata : arviz.InferenceData
-    panel : ChoicePanel
-    spec : Spec
-    layout : ModelLayout
-    info : dict
-        Backend, wall times, settings and whether the result is approximate.
-    """
-
-    idata: Any
-    panel: ChoicePanel
-    spec: Spec
-    layout: ModelLayout
-    info: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def posterior(self) -> xr.Dataset:
-        return self.idata.posterior
-
-    @property
-    def approximate(self) -> bool:
-        return bool(self.info.get("approximate", False))
-
-    @property
-    def has_person_draws(self) -> bool:
-        return "person_taste" in self.idata.posterior
-
-    def population(self, prob: float = 0.9) -> pd.DataFrame:
-        """Summary of population parameters with equal-tailed intervals (see :func:`population_summary`)."""
-        return population_summary(self, prob=prob)
-
-    def save(self, out: str | Path, *, overwrite: bool = True) -> Path:
-        """Write the results folder atomically (see :mod:`hierchoice.archive`)."""
-        from .archive import save_fit
-
-        return save_fit(self, out, overwrite=overwrite)
-
-    def __repr__(self) -> str:
-        post = self.idata.posterior
-        return (
-            f"ChoiceFit({self.panel.n_persons} persons, {self.panel.n_tasks} tasks, "
-            f"{post.sizes['chain']} chains x {post.sizes['draw']} draws, backend {self.info.get('backend')}"
-            f"{', approximate' if self.approximate else ''})"
-        )
-
-    def _repr_html_(self) -> str:
-        import html
-
-        table = self.population().to_html(float_format=lambda v: f"{v:.4g}")
-        return f"<p>{html.escape(repr(self))}</p>{table}"
-
-
 def _sample_pymc(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
+    load_backend()
     import pymc as pm
 
     with model:
@@ -160,7 +103,7 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
 def _sample_numpyro(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
     from pymc.sampling.jax import sample_numpyro_nuts
 
-    from .logit_op import register_jax
+    from ..model.logit_op import register_jax
 
     register_jax()  # the fused likelihood's JAX implementation
     with model:
@@ -175,6 +118,7 @@ _SAMPLERS = {"pymc": _sample_pymc, "nutpie": _sample_nutpie, "numpyro": _sample_
 
 
 def _approximate_advi(model, *, draws, seed, iterations, var_names, progressbar):  # type: ignore[no-untyped-def]
+    load_backend()
     import pymc as pm
 
     with model:
@@ -356,68 +300,3 @@ def add_log_likelihood(result: ChoiceFit) -> None:
     ll = task_log_likelihood(result)
     ll = ll.assign_coords(obs_person=ll["obs_person"].astype(str))
     result.idata.add_groups({"log_likelihood": xr.Dataset({"chosen": ll})})
-
-
-def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str, np.ndarray]:
-    return {
-        "implied_mean": sign * np.exp(mu + sd**2 / 2),
-        "implied_median": sign * np.exp(mu),
-        "implied_sd": np.exp(mu + sd**2 / 2) * np.sqrt(np.expm1(sd**2)),
-    }
-
-
-def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
-    """Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals.
-
-    Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]``,
-    ``covariate_effect[<cov>,<attr>]`` and, for each attribute, the implied mean,
-    median and SD of the taste across people (for a lognormal taste
-    :math:`s\\exp(\\eta)`, :math:`\\eta\\sim N(\\mu,\\sigma)`: mean
-    :math:`s\\,e^{\\mu+\\sigma^2/2}`, median :math:`s\\,e^{\\mu}`, SD
-    :math:`e^{\\mu+\\sigma^2/2}\\sqrt{e^{\\sigma^2}-1}`).
-    """
-    if not 0 < prob < 1:
-        raise SpecError(f"prob must be in (0, 1), got {prob!r}.")
-    post = result.posterior
-    layout = result.layout
-    lo_q, hi_q = (1 - prob) / 2, 1 - (1 - prob) / 2
-    rows: list[dict[str, Any]] = []
-
-    def add(name: str, samples: np.ndarray, kind: str) -> None:
-        flat = np.asarray(samples).reshape(-1)
-        rows.append({"parameter": name, "kind": kind, "mean": flat.mean(), "sd": flat.std(ddof=1) if flat.size > 1 else 0.0,
-                     f"q{lo_q:.3g}": np.quantile(flat, lo_q), f"q{hi_q:.3g}": np.quantile(flat, hi_q)})
-
-    mean = post["taste_mean"]
-    sd = post["taste_sd"] if "taste_sd" in post else None
-    for k, name in enumerate(layout.names):
-        m = mean.sel(attribute=name).values
-        add(f"taste_mean[{name}]", m, "population mean" + (" of log-taste" if layout.is_lognormal(k) else ""))
-    if sd is not None:
-        for name in layout.random_names:
-            k = layout.names.index(name)
-            add(f"taste_sd[{name}]", sd.sel(random_attribute=name).values,
-                "population SD" + (" of log-taste" if layout.is_lognormal(k) else ""))
-    if "taste_corr" in post:
-        names = layout.random_names
-        for i in range(len(names)):
-            for j in range(i + 1, len(names)):
-                add(f"taste_corr[{names[i]},{names[j]}]",
-                    post["taste_corr"].isel(random_attribute=i, random_attribute_bis=j).values, "correlation")
-    if "covariate_effect" in post:
-        for c in post["covariate_effect"]["covariate"].values:
-            for a in post["covariate_effect"]["shifted_attribute"].values:
-                add(f"covariate_effect[{c},{a}]", post["covariate_effect"].sel(covariate=c, shifted_attribute=a).values,
-                    "covariate shift of mean")
-    for k, name in enumerate(layout.names):
-        if not layout.is_lognormal(k):
-            continue
-        m = mean.sel(attribute=name).values
-        s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
-        for key, vals in _lognormal_moments(m, s_, layout.sign(k)).items():
-            add(f"{key}[{name}]", vals, f"taste across people ({key.replace('implied_', '')})")
-    return pd.DataFrame(rows).set_index("parameter")
-
-
-def fit_info_json(result: ChoiceFit) -> str:
-    return json.dumps(result.info, indent=2, default=str)

@@ -35,10 +35,11 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import SpecError
+from .._backend import load_backend
+from ..data.panel import ChoicePanel, Term
+from ..exceptions import SpecError
+from ..spec import Spec, load_spec
 from .likelihood import DifferenceData, difference_data, task_loglik_graph
-from .panel import ChoicePanel, Term
-from .spec import Spec, load_spec
 
 __all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD"]
 
@@ -218,6 +219,7 @@ def _constant_centre(panel: ChoicePanel, terms: tuple[Term, ...], scale: np.ndar
 
 def _centred_constants(mu_free, layout: ModelLayout):  # type: ignore[no-untyped-def]
     """The constants' population means from their free (centred) parameters."""
+    load_backend()
     import pytensor.tensor as pt
 
     assert layout.constant_centre is not None
@@ -233,6 +235,7 @@ def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> DifferenceData:
 
 def _into_columns(values, columns: tuple[int, ...] | list[int], n_columns: int):  # type: ignore[no-untyped-def]
     """Place (person, len(columns)) ``values`` in ``columns`` of a (person, n_columns) matrix, zeros elsewhere."""
+    load_backend()
     import pytensor.tensor as pt
 
     if list(columns) == list(range(n_columns)):
@@ -249,6 +252,7 @@ def _panel_loglik(data: DifferenceData, beta, likelihood: str, person_batch: int
     """
     if likelihood == "graph":
         return task_loglik_graph(data, [beta[:, k] for k in range(data.D.shape[0])]).sum()
+    load_backend()
     import pytensor
 
     from .logit_op import op_layout, panel_logit_loglik
@@ -257,6 +261,7 @@ def _panel_loglik(data: DifferenceData, beta, likelihood: str, person_batch: int
     n_k, n_o, _ = D.shape
     n_p = data.D.shape[1]
     if person_batch is not None:
+        load_backend()
         import pymc as pm
 
         # (person, ...) views so that one random index picks whole persons
@@ -311,6 +316,7 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
 
         .. math:: \sum_n \sum_t \log P_{nt}(\beta_n).
     """
+    load_backend()
     import pymc as pm
     import pytensor.tensor as pt
 

@@ -41,10 +41,11 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .exceptions import DataError, FitError, SpecError, first_few
-from .likelihood import choice_probabilities, difference_data, task_loglik_numpy
-from .panel import ChoicePanel
-from .spec import Spec, load_spec
+from .._backend import load_backend
+from ..data.panel import ChoicePanel
+from ..exceptions import DataError, FitError, SpecError, first_few
+from ..model.likelihood import choice_probabilities, difference_data, task_loglik_numpy
+from ..spec import Spec, load_spec
 
 __all__ = [
     "taste_draws",
@@ -364,9 +365,10 @@ def prior_predictive(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | 
         when the priors know nothing); ``chance_rate`` as an attribute. Priors that
         put much mass on near-deterministic choices are too wide for the design.
     """
+    load_backend()
     import pymc as pm
 
-    from .model import build_model
+    from ..model.build import build_model
 
     if isinstance(draws, bool) or not isinstance(draws, int) or draws < 1:
         raise SpecError(f"prior_predictive(draws=...) must be a whole number >= 1, got {draws!r}.")
@@ -581,7 +583,7 @@ def holdout_validation(
     -------
     HoldoutResult
     """
-    from .fit import fit
+    from ..inference.sampling import fit
 
     spec = panel.spec if spec is None else load_spec(spec)
     train, test = holdout_split(panel, tasks=tasks, method=method, seed=seed)

@@ -53,8 +53,8 @@ import pandas as pd
 import xarray as xr
 from scipy import special
 
-from .exceptions import FitError, SpecError
-from .fit import ChoiceFit
+from ..exceptions import FitError, SpecError
+from ..inference.results import ChoiceFit
 
 __all__ = [
     "DEFAULT_PROB",

@@ -62,14 +62,15 @@ from typing import Any, Protocol
 import numpy as np
 import xarray as xr
 
-from ._io import atomic_dir, claim_folder, write_with
-from .checks import population_draws
+from .._backend import load_backend
+from .._io import write_with
+from ..data.panel import ChoicePanel, Term
+from ..data.simulate import SimAttribute, draw_choices, simulate_panel
+from ..diagnostics.checks import population_draws
+from ..exceptions import ArchiveError, FitError, SpecError, first_few
+from ..model.build import POPULATION_VARS, build_model
+from ..spec import Spec, _positive_int, load_spec
 from .distributed import TaskFailure, run_tasks, task_seed, task_seed_sequence
-from .exceptions import ArchiveError, FitError, SpecError, first_few
-from .model import POPULATION_VARS, build_model
-from .panel import ChoicePanel, Term, load_panel
-from .simulate import SimAttribute, draw_choices, simulate_panel
-from .spec import Spec, _positive_int, load_spec
 
 __all__ = [
     "Fitter",
@@ -88,7 +89,6 @@ __all__ = [
     "save_result",
     "load_result",
     "format_calibration",
-    "calibrate_command",
 ]
 
 #: Random streams within one task (see :func:`hierchoice.distributed.task_seed_sequence`).
@@ -166,7 +166,7 @@ class NutsFitter:
         return cls(draws=s.draws, tune=s.tune, chains=s.chains, backend=backend, target_accept=s.target_accept)
 
     def __call__(self, panel: ChoicePanel, spec: Spec, seed: int) -> xr.Dataset:
-        from .fit import fit
+        from ..inference.sampling import fit
 
         spec = spec.with_sampling(store_person_draws=False)
         with _quiet_sampler_logs():
@@ -237,6 +237,7 @@ def simulate_choices(panel: ChoicePanel, person_taste: np.ndarray, rng: np.rando
 
 def _prior_draw(panel: ChoicePanel, spec: Spec, seed: int) -> tuple[xr.DataArray, np.ndarray]:
     """One draw from the model's prior: the population parameters and the person tastes (user's units)."""
+    load_backend()
     import pymc as pm
 
     model = build_model(panel, spec)
@@ -1096,36 +1097,6 @@ def load_result(path: str | Path) -> xr.Dataset:
             return ds.load()
     except (OSError, ValueError) as err:
         raise ArchiveError(f"Could not read {str(path)!r}: {type(err).__name__}: {err}") from None
-
-
-def calibrate_command(data: str | Path, spec: str | Path, fits: int, out: str | Path, workers: int | None,
-                      seed: int | None) -> int:
-    """``hierchoice calibrate DATA --spec SPEC --fits N --out FOLDER``: calibration on your own design.
-
-    Writes the folder ``out`` atomically: ``calibration.nc`` (:func:`save_result`),
-    ``rank_histograms.png`` and ``ecdf_difference.png``; prints one line per
-    parameter. The fits use the spec's ``[sampling]`` settings; ``seed`` defaults to
-    ``sampling.seed``.
-
-    Returns
-    -------
-    int
-        0 when no parameter is flagged, 1 otherwise.
-    """
-    from .diagnostic_plots import save_figure
-
-    claim_folder(out, "calibration", inputs=(data, spec))  # refuse before hours of fits, not after
-    spec_obj = load_spec(spec)
-    panel = load_panel(data, spec_obj)
-    seed = spec_obj.sampling.seed if seed is None else seed
-    result = simulation_based_calibration(panel, spec_obj, fits=fits, seed=seed, workers=workers)
-    with atomic_dir(out, kind="calibration", inputs=(data, spec)) as tmp:
-        save_result(result, tmp / "calibration.nc")
-        save_figure(plot_rank_histograms(result), tmp / "rank_histograms.png")
-        save_figure(plot_ecdf_difference(result), tmp / "ecdf_difference.png")
-    print(format_calibration(result))
-    print(f"\nresults written to {out}/ (calibration.nc, rank_histograms.png, ecdf_difference.png)")
-    return 1 if bool(result["flagged"].any()) else 0
 
 
 def format_calibration(result: xr.Dataset) -> str:

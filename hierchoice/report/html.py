@@ -38,10 +38,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._io import atomic_write_text, write_with
-from .exceptions import HierchoiceError
-from .fit import ChoiceFit
-from .tastes import (
+from .._io import atomic_write_text, write_with
+from ..analysis.tastes import (
     DEFAULT_PROB,
     WarningRecord,
     check_prob,
@@ -49,6 +47,8 @@ from .tastes import (
     population_tastes,
     taste_shrinkage,
 )
+from ..exceptions import HierchoiceError
+from ..inference.results import ChoiceFit
 
 __all__ = ["REPORT_FILE", "convergence_status", "write_report"]
 
@@ -227,7 +227,7 @@ def convergence_status(folder: str | Path, result: ChoiceFit | None = None) -> d
     """The convergence verdict of a results folder, or why there is none.
 
     Reads ``diagnostics.json`` when it belongs to this fit; otherwise runs
-    :func:`hierchoice.checks.check_folder` (which writes ``diagnostics.json`` and
+    :func:`hierchoice.diagnostics.folder.check_folder` (which writes ``diagnostics.json`` and
     the diagnostic plots into the folder). Any problem — the checks module
     missing, or failing — gives ``verdict = "not checked"`` with the ``reason``;
     this function never raises because of the checks.
@@ -258,13 +258,13 @@ def convergence_status(folder: str | Path, result: ChoiceFit | None = None) -> d
             reasons.append(f"diagnostics.json could not be read ({err})")
     if report is None:
         try:
-            from .checks import check_folder
+            from ..diagnostics.folder import check_folder
         except Exception as err:  # the module is absent or broken: the report still gets written
             reasons.append(f"the convergence checks (hierchoice.checks) are not available ({type(err).__name__})")
         else:
             try:
                 report, _code = check_folder(folder)
-                source = "hierchoice.checks.check_folder"
+                source = "hierchoice.diagnostics.folder.check_folder"
             except Exception as err:  # a failing check must not stop the report
                 log.warning("convergence checks failed: %s", err)
                 reasons.append(f"the convergence checks failed: {type(err).__name__}: {err}")
@@ -607,7 +607,7 @@ def _population_section(result: ChoiceFit, table: pd.DataFrame, persons: pd.Data
 
 
 def _wtp_section(result: ChoiceFit, prob: float, csv: dict[str, pd.DataFrame]) -> str:
-    from .wtp import person_wtp, population_wtp, price_attribute
+    from ..analysis.wtp import person_wtp, population_wtp, price_attribute
 
     try:
         price = price_attribute(result)
@@ -756,8 +756,14 @@ def _generic_table(value: Any) -> str:
 
 
 def _scenario_section(result: ChoiceFit, market: Any, prob: float, csv: dict[str, pd.DataFrame]) -> str:
-    from .shares import PERSONS, elasticities, predict_shares, read_market, sensitivity
-    from .wtp import price_attribute
+    from ..analysis.shares import (
+        PERSONS,
+        elasticities,
+        predict_shares,
+        read_market,
+        sensitivity,
+    )
+    from ..analysis.wtp import price_attribute
 
     frame = read_market(market)
     tables = {}
@@ -878,11 +884,11 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
     Notes
     -----
     The convergence verdict comes from :func:`convergence_status`: a
-    ``diagnostics.json`` of this fit, or else :func:`hierchoice.checks.check_folder`
+    ``diagnostics.json`` of this fit, or else :func:`hierchoice.diagnostics.folder.check_folder`
     (which writes it). If neither is possible the report says so at the top and
     marks every section provisional; it is written all the same.
     """
-    from .archive import load_fit
+    from ..inference.results import load_fit
 
     prob = check_prob(prob)
     folder = Path(folder)
@@ -926,7 +932,7 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
 
 def _page(result: ChoiceFit, folder: Path, status: dict[str, Any],
           sections: Sequence[tuple[str, str, str, bool]]) -> str:
-    from . import __version__
+    from .._version import __version__
 
     title = f"Choice model results: {folder.resolve().name}"
     now = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")

@@ -16,9 +16,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ._io import write_with
+from .._io import write_with
+from ..exceptions import FitError
 from .checks import parameter_diagnostics, population_draws
-from .exceptions import FitError
 
 __all__ = [
     "plot_rank",

@@ -34,8 +34,8 @@ from typing import Any
 
 import numpy as np
 
-from .exceptions import FitError, SpecError
-from .spec import _positive_int
+from ..exceptions import FitError, SpecError
+from ..spec import _positive_int
 
 __all__ = [
     "SINGLE_THREAD_ENV",

@@ -45,8 +45,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .exceptions import SpecError, first_few
-from .fit import ChoiceFit
+from ..exceptions import SpecError, first_few
+from ..inference.results import ChoiceFit
 from .tastes import (
     DEFAULT_PROB,
     WarningRecord,

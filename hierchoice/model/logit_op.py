@@ -45,7 +45,12 @@ from typing import Any
 
 import numba
 import numpy as np
-import pytensor.tensor as pt
+
+from .._backend import load_backend
+
+load_backend()
+
+import pytensor.tensor as pt  # noqa: E402
 from pytensor.gradient import DisconnectedType, grad_not_implemented, grad_undefined
 from pytensor.graph.basic import Apply
 from pytensor.graph.op import Op

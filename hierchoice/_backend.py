@@ -1,0 +1,25 @@
+"""Import PyTensor (and with it PyMC's backend) once, without its BLAS start-up warning.
+
+PyTensor warns at import when it links BLAS through NumPy (pip installs); the message is about speed, not
+correctness, and would be the first thing users see. The warning is silenced for that one import only: the
+package sets no global warning filter.
+"""
+
+from __future__ import annotations
+
+import functools
+import logging
+import warnings
+
+__all__ = ["load_backend"]
+
+
+@functools.cache
+def load_backend() -> None:
+    """Import pytensor quietly (idempotent; cheap after the first call)."""
+    logging.getLogger("pytensor.tensor.blas").setLevel(logging.ERROR)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS installation",
+                                category=UserWarning)
+        import pytensor  # noqa: F401
+        import pytensor.tensor  # noqa: F401

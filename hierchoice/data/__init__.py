@@ -1,0 +1,42 @@
+"""Stage 1, the data: reading choice tables, validating and coding them into panel arrays, and invented panels.
+
+Owns: :class:`ChoicePanel` (validated, labelled dense arrays), reading CSV / Parquet / frames, wide <-> long,
+dynamics (lagged choice, initial conditions), and :mod:`~hierchoice.data.simulate` (panels with known tastes).
+May import: ``hierchoice.spec``, ``hierchoice.exceptions``, ``hierchoice._io``. Knows nothing of PyMC.
+"""
+
+from __future__ import annotations
+
+from .panel import (
+    ChoicePanel,
+    Term,
+    ValidationSummary,
+    load_panel,
+    long_to_wide,
+    read_table,
+    wide_to_long,
+)
+from .simulate import (
+    SimAttribute,
+    SimulatedPanel,
+    benchmark_scenario,
+    draw_choices,
+    ferry_scenario,
+    simulate_panel,
+)
+
+__all__ = [
+    "Term",
+    "ValidationSummary",
+    "ChoicePanel",
+    "read_table",
+    "wide_to_long",
+    "long_to_wide",
+    "load_panel",
+    "SimAttribute",
+    "SimulatedPanel",
+    "simulate_panel",
+    "ferry_scenario",
+    "benchmark_scenario",
+    "draw_choices",
+]

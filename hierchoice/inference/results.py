@@ -1,0 +1,239 @@
+"""The fit result object and its results folder: write it atomically, read it back into the same object.
+
+:class:`ChoiceFit` holds the posterior with the panel and spec it came from;
+:func:`population_summary` tabulates its population parameters.
+
+A results folder holds
+
+``posterior.nc``
+    ArviZ InferenceData as NetCDF: posterior (reported variables only),
+    sample_stats, observed_data, constant_data (the panel arrays) and, with
+    person draws, log_likelihood at the task level. Its attributes carry the
+    spec (TOML), the data summary, the internal layout and the fit info (JSON).
+``population.csv``
+    Population parameters with 90 % equal-tailed intervals and the implied
+    moments of each taste distribution.
+``spec.toml``
+    The spec the fit used (sampling options as run).
+``fit.log``
+    What was run, with which settings, and how long it took.
+
+The folder is assembled in a temporary sibling and renamed into place, so an
+interrupted write never leaves a half-written folder or damages an earlier one.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .._io import atomic_dir
+from ..data.panel import ChoicePanel, ValidationSummary
+from ..exceptions import ArchiveError, SpecError
+from ..model.build import ModelLayout, model_layout
+from ..spec import Spec
+
+__all__ = ["ChoiceFit", "population_summary", "save_fit", "load_fit", "POSTERIOR_FILE"]
+
+POSTERIOR_FILE = "posterior.nc"
+
+
+@dataclass
+class ChoiceFit:
+    """A fitted panel mixed logit: the posterior, the panel and the spec.
+
+    Attributes
+    ----------
+    idata : arviz.InferenceData
+    panel : ChoicePanel
+    spec : Spec
+    layout : ModelLayout
+    info : dict
+        Backend, wall times, settings and whether the result is approximate.
+    """
+
+    idata: Any
+    panel: ChoicePanel
+    spec: Spec
+    layout: ModelLayout
+    info: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def posterior(self) -> xr.Dataset:
+        return self.idata.posterior
+
+    @property
+    def approximate(self) -> bool:
+        return bool(self.info.get("approximate", False))
+
+    @property
+    def has_person_draws(self) -> bool:
+        return "person_taste" in self.idata.posterior
+
+    def population(self, prob: float = 0.9) -> pd.DataFrame:
+        """Summary of population parameters with equal-tailed intervals (see :func:`population_summary`)."""
+        return population_summary(self, prob=prob)
+
+    def save(self, out: str | Path, *, overwrite: bool = True) -> Path:
+        """Write the results folder atomically (see :func:`save_fit`)."""
+        return save_fit(self, out, overwrite=overwrite)
+
+    def __repr__(self) -> str:
+        post = self.idata.posterior
+        return (
+            f"ChoiceFit({self.panel.n_persons} persons, {self.panel.n_tasks} tasks, "
+            f"{post.sizes['chain']} chains x {post.sizes['draw']} draws, backend {self.info.get('backend')}"
+            f"{', approximate' if self.approximate else ''})"
+        )
+
+    def _repr_html_(self) -> str:
+        import html
+
+        table = self.population().to_html(float_format=lambda v: f"{v:.4g}")
+        return f"<p>{html.escape(repr(self))}</p>{table}"
+
+
+def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str, np.ndarray]:
+    return {
+        "implied_mean": sign * np.exp(mu + sd**2 / 2),
+        "implied_median": sign * np.exp(mu),
+        "implied_sd": np.exp(mu + sd**2 / 2) * np.sqrt(np.expm1(sd**2)),
+    }
+
+
+def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
+    """Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals.
+
+    Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]``,
+    ``covariate_effect[<cov>,<attr>]`` and, for each attribute, the implied mean,
+    median and SD of the taste across people (for a lognormal taste
+    :math:`s\\exp(\\eta)`, :math:`\\eta\\sim N(\\mu,\\sigma)`: mean
+    :math:`s\\,e^{\\mu+\\sigma^2/2}`, median :math:`s\\,e^{\\mu}`, SD
+    :math:`e^{\\mu+\\sigma^2/2}\\sqrt{e^{\\sigma^2}-1}`).
+    """
+    if not 0 < prob < 1:
+        raise SpecError(f"prob must be in (0, 1), got {prob!r}.")
+    post = result.posterior
+    layout = result.layout
+    lo_q, hi_q = (1 - prob) / 2, 1 - (1 - prob) / 2
+    rows: list[dict[str, Any]] = []
+
+    def add(name: str, samples: np.ndarray, kind: str) -> None:
+        flat = np.asarray(samples).reshape(-1)
+        rows.append({"parameter": name, "kind": kind, "mean": flat.mean(), "sd": flat.std(ddof=1) if flat.size > 1 else 0.0,
+                     f"q{lo_q:.3g}": np.quantile(flat, lo_q), f"q{hi_q:.3g}": np.quantile(flat, hi_q)})
+
+    mean = post["taste_mean"]
+    sd = post["taste_sd"] if "taste_sd" in post else None
+    for k, name in enumerate(layout.names):
+        m = mean.sel(attribute=name).values
+        add(f"taste_mean[{name}]", m, "population mean" + (" of log-taste" if layout.is_lognormal(k) else ""))
+    if sd is not None:
+        for name in layout.random_names:
+            k = layout.names.index(name)
+            add(f"taste_sd[{name}]", sd.sel(random_attribute=name).values,
+                "population SD" + (" of log-taste" if layout.is_lognormal(k) else ""))
+    if "taste_corr" in post:
+        names = layout.random_names
+        for i in range(len(names)):
+            for j in range(i + 1, len(names)):
+                add(f"taste_corr[{names[i]},{names[j]}]",
+                    post["taste_corr"].isel(random_attribute=i, random_attribute_bis=j).values, "correlation")
+    if "covariate_effect" in post:
+        for c in post["covariate_effect"]["covariate"].values:
+            for a in post["covariate_effect"]["shifted_attribute"].values:
+                add(f"covariate_effect[{c},{a}]", post["covariate_effect"].sel(covariate=c, shifted_attribute=a).values,
+                    "covariate shift of mean")
+    for k, name in enumerate(layout.names):
+        if not layout.is_lognormal(k):
+            continue
+        m = mean.sel(attribute=name).values
+        s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
+        for key, vals in _lognormal_moments(m, s_, layout.sign(k)).items():
+            add(f"{key}[{name}]", vals, f"taste across people ({key.replace('implied_', '')})")
+    return pd.DataFrame(rows).set_index("parameter")
+
+
+def _attrs_for(result: ChoiceFit) -> dict[str, str]:
+    return {
+        "hierchoice_spec_toml": result.spec.to_toml(),
+        "hierchoice_data_summary": json.dumps(result.panel.summary.to_dict()),
+        "hierchoice_layout": json.dumps(result.layout.to_dict()),
+        "hierchoice_fit_info": json.dumps(result.info, default=str),
+        "hierchoice_terms": json.dumps([vars(t) for t in result.panel.terms]),
+    }
+
+
+def save_fit(result: ChoiceFit, out: str | Path, *, overwrite: bool = True, extra: dict[str, Any] | None = None) -> Path:
+    """Write ``result`` into the folder ``out`` (atomically; see the module docstring)."""
+    out = Path(out)
+    idata = result.idata
+    attrs = _attrs_for(result)
+    with atomic_dir(out, kind="results", overwrite=overwrite) as tmp:
+        for group in idata.groups():
+            getattr(idata, group).attrs.update(attrs if group == "posterior" else {})
+        idata.to_netcdf(str(tmp / POSTERIOR_FILE), engine="h5netcdf")
+        population_summary(result).to_csv(tmp / "population.csv")
+        (tmp / "spec.toml").write_text(result.spec.to_toml(), encoding="utf-8")
+        lines = [f"{k}: {v}" for k, v in result.info.items()]
+        lines.append(f"persons: {result.panel.n_persons}, tasks: {result.panel.n_tasks}")
+        (tmp / "fit.log").write_text("\n".join(lines) + "\n", encoding="utf-8")
+        for name, text in (extra or {}).items():
+            (tmp / name).write_text(str(text), encoding="utf-8")
+    return out
+
+
+def load_fit(folder: str | Path) -> ChoiceFit:
+    """Reopen a results folder written by :func:`save_fit` into a :class:`ChoiceFit`."""
+    import arviz as az
+
+    folder = Path(folder)
+    path = folder / POSTERIOR_FILE
+    if not path.exists():
+        raise ArchiveError(f"{str(folder)!r} is not a hierchoice results folder: {POSTERIOR_FILE} is missing.")
+    try:
+        idata = az.from_netcdf(str(path), engine="h5netcdf")
+        idata.load()
+    except Exception as err:  # a damaged or foreign file
+        raise ArchiveError(f"Could not read {str(path)!r}: {type(err).__name__}: {err}") from None
+    attrs = idata.posterior.attrs
+    try:
+        import tomllib
+
+        spec = Spec.from_dict(tomllib.loads(attrs["hierchoice_spec_toml"]))
+        summary_d = json.loads(attrs["hierchoice_data_summary"])
+        info = json.loads(attrs["hierchoice_fit_info"])
+        terms_d = json.loads(attrs["hierchoice_terms"])
+    except KeyError as err:
+        raise ArchiveError(f"{str(path)!r} lacks the hierchoice attribute {err}; was it written by hierchoice?") from None
+    from ..data.panel import Term
+
+    const = idata.constant_data
+    obs = idata.observed_data
+    tpp = summary_d["tasks_per_person"]
+    summary = ValidationSummary(
+        rows_in=summary_d["rows_in"], persons=summary_d["persons"], tasks=summary_d["tasks"],
+        tasks_per_person=(tpp["min"], tpp["median"], tpp["max"]),
+        alternatives=tuple(summary_d["alternatives"]), attributes=tuple(summary_d["attributes"]),
+        covariates=tuple(summary_d["covariates"]), removed=summary_d["removed"], filled=summary_d["filled"],
+        notes=summary_d["notes"],
+    )
+    task_mask = const["task_mask"].values.astype(bool)
+    task_ids = const["task_id"].values.astype(object)
+    task_ids[~task_mask] = None
+    panel = ChoicePanel(
+        X=const["x"].values, available=const["available"].values.astype(bool), task_mask=task_mask,
+        chosen=obs["chosen"].values.astype(np.int64), task_ids=task_ids,
+        lag_missing=const["lag_missing"].values.astype(bool),
+        Z=const["z"].values if "z" in const else np.zeros((const.sizes["person"], 0)),
+        persons=const["person"].values.tolist(), alternatives=[str(a) for a in const["alternative"].values],
+        terms=[Term(**t) for t in terms_d], covariates=[str(c) for c in const["covariate"].values] if "z" in const else [],
+        summary=summary, spec=spec,
+    )
+    return ChoiceFit(idata=idata, panel=panel, spec=spec, layout=model_layout(panel, spec), info=info)
