@@ -20,13 +20,21 @@ Example
 from __future__ import annotations
 
 import copy
-import difflib
 import tomllib
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+from ._args import check_keys as _check_keys
+from ._args import choice as _choice
+from ._args import flag as _bool
+from ._args import label_list as _label_list
+from ._args import pattern_check as _format_check
+from ._args import text as _str
+from ._args import text_list as _str_list
+from ._args import whole_number as _positive_int
+from ._toml import dumps_toml
 from .exceptions import SpecError
 
 __all__ = [
@@ -53,71 +61,6 @@ TASK_SCOPES = ("person", "global")
 INVALID_TASK_POLICIES = ("error", "drop")
 PARAMETERIZATIONS = ("auto", "noncentred", "centred")
 BACKENDS = ("auto", "pymc", "nutpie", "numpyro")
-
-
-def _check_keys(table: Mapping[str, Any], allowed: set[str], where: str) -> None:
-    if not isinstance(table, Mapping):
-        raise SpecError(f"[{where}] must be a table of keys, got {type(table).__name__}: {table!r}.")
-    for key in table:
-        if key not in allowed:
-            close = difflib.get_close_matches(str(key), sorted(allowed), n=1)
-            hint = f" Did you mean {close[0]!r}?" if close else ""
-            raise SpecError(
-                f"Unknown key {key!r} in [{where}]; known keys: {', '.join(sorted(allowed))}.{hint}"
-            )
-
-
-def _choice(value: Any, options: tuple[str, ...], where: str) -> str:
-    if value not in options:
-        close = difflib.get_close_matches(str(value), options, n=1)
-        hint = f" Did you mean {close[0]!r}?" if close else ""
-        raise SpecError(f"{where} = {value!r} is not one of: {', '.join(options)}.{hint}")
-    return str(value)
-
-
-def _str(value: Any, where: str) -> str:
-    if not isinstance(value, str) or not value:
-        raise SpecError(f"{where} must be a non-empty string (a column or label name), got {value!r}.")
-    return value
-
-
-def _str_list(value: Any, where: str) -> tuple[str, ...]:
-    if isinstance(value, str):
-        value = [value]
-    if not isinstance(value, (list, tuple)) or not all(isinstance(v, str) and v for v in value):
-        raise SpecError(f"{where} must be a list of names, got {value!r}.")
-    if len(set(value)) != len(value):
-        raise SpecError(f"{where} lists a name twice: {value!r}.")
-    return tuple(value)
-
-
-def _label_list(value: Any, where: str) -> tuple[str, ...]:
-    """A list of alternative labels; numbers are read as text (``1`` -> ``"1"``)."""
-    if not isinstance(value, (list, tuple)):
-        raise SpecError(f"{where} must be a list of alternative labels, e.g. [\"a\", \"b\"], got {value!r}.")
-    return _str_list([str(v) for v in value], where)
-
-
-def _format_check(pattern: str, where: str, **fields: str) -> None:
-    try:
-        pattern.format(**fields)
-    except (KeyError, IndexError, ValueError, AttributeError, TypeError) as err:
-        raise SpecError(
-            f"{where} {pattern!r} is not a valid pattern ({err!r}); it may only use "
-            f"{', '.join('{' + f + '}' for f in fields)} (write {{{{ and }}}} for literal braces)."
-        ) from None
-
-
-def _bool(value: Any, where: str) -> bool:
-    if not isinstance(value, bool):
-        raise SpecError(f"{where} must be true or false, got {value!r}.")
-    return value
-
-
-def _positive_int(value: Any, where: str, *, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-        raise SpecError(f"{where} must be a whole number >= {minimum}, got {value!r}.")
-    return value
 
 
 @dataclass(frozen=True)
@@ -621,44 +564,3 @@ def load_spec(spec: Spec | Mapping[str, Any] | str | Path) -> Spec:
     if isinstance(spec, (str, Path)):
         return Spec.from_toml(spec)
     raise SpecError(f"A spec must be a Spec, a dict or a path to a TOML file, not {type(spec).__name__}.")
-
-
-# --- a small TOML writer (enough for specs: strings, numbers, booleans, lists, nested tables) ---
-
-def _toml_value(value: Any) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, (int, float)):
-        return repr(value)
-    if isinstance(value, str):
-        escaped = value.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
-        escaped = "".join(f"\\u{ord(c):04x}" if ord(c) < 0x20 or ord(c) == 0x7F else c for c in escaped)
-        return f'"{escaped}"'
-    if isinstance(value, (list, tuple)):
-        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    if isinstance(value, Mapping):
-        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(v)}" for k, v in value.items()) + " }"
-    raise SpecError(f"Cannot write {value!r} to TOML.")
-
-
-def _toml_key(key: str) -> str:
-    if key and all((c.isascii() and c.isalnum()) or c in "_-" for c in key):
-        return key
-    return _toml_value(str(key))
-
-
-def dumps_toml(table: Mapping[str, Any], prefix: str = "") -> str:
-    """Write a nested mapping as TOML (tables for nested mappings, inline otherwise)."""
-    lines: list[str] = []
-    scalars = {k: v for k, v in table.items() if not isinstance(v, Mapping) or k.endswith("_labels")}
-    tables = {k: v for k, v in table.items() if k not in scalars}
-    if prefix and (scalars or not tables):
-        lines.append(f"[{prefix}]")
-    for key, value in scalars.items():
-        lines.append(f"{_toml_key(key)} = {_toml_value(value)}")
-    if lines:
-        lines.append("")
-    for key, value in tables.items():
-        sub = f"{prefix}.{_toml_key(key)}" if prefix else _toml_key(key)
-        lines.append(dumps_toml(value, sub))
-    return "\n".join(lines)

@@ -53,8 +53,10 @@ import pandas as pd
 import xarray as xr
 from scipy import special
 
+from .._args import whole_number
 from ..exceptions import FitError, SpecError
 from ..inference.results import ChoiceFit
+from ..model.transforms import latent_to_coefficient
 
 __all__ = [
     "DEFAULT_PROB",
@@ -524,8 +526,7 @@ def simulate_population_tastes(
     xarray.DataArray
         Coefficients in the user's units, dims (chain, draw, sim_person, attribute).
     """
-    if isinstance(n_persons, bool) or not isinstance(n_persons, (int, np.integer)) or n_persons < 1:
-        raise SpecError(f"n_persons must be a whole number >= 1, got {n_persons!r}.")
+    n_persons = whole_number(n_persons, "n_persons")
     layout = result.layout
     post = _thin(result.posterior, max_draws)
     p = _parameters(result, post)
@@ -544,15 +545,7 @@ def simulate_population_tastes(
             chol = _safe_cholesky(p["corr"])  # (C, D, R, R)
             e = np.einsum("cdij,cdnj->cdni", chol, e)
         eta[..., rnd] += e * sd_r[:, :, None, :]
-    values = eta
-    for k in range(n_k):
-        if layout.is_lognormal(k):
-            values[..., k] = layout.sign(k) * np.exp(eta[..., k])
-    if layout.wtp_space and layout.price is not None:
-        lam = -values[..., layout.price]
-        for k in range(n_k):
-            if k != layout.price:
-                values[..., k] = lam * values[..., k]
+    values = latent_to_coefficient(eta, layout.taste_map)
     return xr.DataArray(
         values, dims=("chain", "draw", "sim_person", "attribute"),
         coords={"chain": p["chain"], "draw": p["draw"], "sim_person": np.arange(n_persons),

@@ -51,10 +51,12 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._args import whole_number
 from .._records import Check
 from ..exceptions import FitError, SpecError, first_few
 from ..model.build import POPULATION_VARS
 from ..model.likelihood import difference_data, task_loglik_numpy
+from ..model.transforms import latent_to_coefficient
 
 __all__ = ["PERSON_LOGLIK", "PARETO_K_UNUSABLE", "task_loo", "person_log_marginal", "person_loo", "pareto_k_checks",
            "compare_models"]
@@ -121,16 +123,7 @@ def _population_tastes(layout: Any, mean: np.ndarray, sd: np.ndarray | None, cho
     if rnd:
         dev = np.einsum("dspr,dqr->dspq", e, chol) if chol is not None else e
         theta[..., rnd] += dev * sd[:, None, None, :]
-    coef = theta
-    for k in range(n_k):
-        if layout.is_lognormal(k):
-            coef[..., k] = layout.sign(k) * np.exp(theta[..., k])
-    if layout.wtp_space:
-        lam = -coef[..., layout.price].copy()
-        for k in range(n_k):
-            if k != layout.price:
-                coef[..., k] = lam * coef[..., k]
-    return coef
+    return latent_to_coefficient(theta, layout.taste_map)
 
 
 def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, seed: int = 0) -> xr.Dataset:
@@ -158,8 +151,7 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
         ``log_marginal`` and ``mc_se`` (delta-method standard error of each value,
         :math:`\sqrt{\hat c^2/S}`).
     """
-    if isinstance(n_sim, bool) or not isinstance(n_sim, int) or n_sim < 2:
-        raise SpecError(f"person_log_marginal(n_sim=...) must be a whole number >= 2, got {n_sim!r}.")
+    whole_number(n_sim, "person_log_marginal(n_sim=...)", minimum=2)
     panel, layout = result.panel, result.layout
     post = _thinned(result.idata.posterior, max_draws)
     if "taste_mean" not in post:

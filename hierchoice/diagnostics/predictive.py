@@ -41,6 +41,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._args import whole_number
 from .._backend import load_backend
 from ..data.panel import ChoicePanel
 from ..exceptions import DataError, FitError, SpecError, first_few
@@ -210,8 +211,7 @@ def reliability(result: Any, *, bins: int = 10, panel: ChoicePanel | None = None
         chosen) and ``se`` (binomial standard error of the observed share if the
         predictions were right, :math:`\\sqrt{\\bar p(1-\\bar p)/n}`).
     """
-    if isinstance(bins, bool) or not isinstance(bins, int) or bins < 1:
-        raise SpecError(f"reliability(bins=...) must be a whole number >= 1, got {bins!r}.")
+    whole_number(bins, "reliability(bins=...)")
     panel = result.panel if panel is None else panel
     prob = (posterior_choice_probabilities(result, panel=panel) if probabilities is None else probabilities).values
     cells = panel.available & panel.task_mask[:, :, None]
@@ -315,8 +315,7 @@ def ppc_shares(result: Any, *, draws: int = 200, prob: float = 0.9, seed: int = 
     """
     if not 0 < prob < 1:
         raise SpecError(f"ppc_shares(prob=...) must be in (0, 1), got {prob!r}.")
-    if isinstance(draws, bool) or not isinstance(draws, int) or draws < 2:
-        raise SpecError(f"ppc_shares(draws=...) must be a whole number >= 2, got {draws!r}.")
+    whole_number(draws, "ppc_shares(draws=...)", minimum=2)
     panel = result.panel if panel is None else panel
     betas = taste_draws(result, panel, max_draws=draws)
     rng = np.random.default_rng(seed)
@@ -370,8 +369,7 @@ def prior_predictive(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | 
 
     from ..model.build import build_model
 
-    if isinstance(draws, bool) or not isinstance(draws, int) or draws < 1:
-        raise SpecError(f"prior_predictive(draws=...) must be a whole number >= 1, got {draws!r}.")
+    whole_number(draws, "prior_predictive(draws=...)")
     spec = panel.spec if spec is None else load_spec(spec)
     model = build_model(panel, spec)
     with warnings.catch_warnings():
@@ -433,8 +431,7 @@ def holdout_split(panel: ChoicePanel, *, tasks: int = 1, method: str = "last",
     (train, test) : tuple of ChoicePanel
         Every person is in ``train``; ``test`` has the persons with a held-out task.
     """
-    if isinstance(tasks, bool) or not isinstance(tasks, int) or tasks < 1:
-        raise SpecError(f"holdout_split(tasks=...) must be a whole number >= 1, got {tasks!r}.")
+    whole_number(tasks, "holdout_split(tasks=...)")
     if method not in ("last", "random"):
         raise SpecError(f"holdout_split(method={method!r}) must be 'last' or 'random'.")
     mask = panel.task_mask

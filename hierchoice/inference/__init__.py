@@ -8,13 +8,7 @@ May import: ``hierchoice.model``, ``hierchoice.data``, ``hierchoice.spec``, the 
 
 from __future__ import annotations
 
-from .results import (
-    POSTERIOR_FILE,
-    ChoiceFit,
-    load_fit,
-    population_summary,
-    save_fit,
-)
+from .results import POSTERIOR_FILE, ChoiceFit, load_fit, population_summary, save_fit
 from .sampling import (
     REPORTED_VARS,
     add_log_likelihood,
@@ -24,14 +18,6 @@ from .sampling import (
 )
 
 __all__ = [
-    "ChoiceFit",
-    "population_summary",
-    "save_fit",
-    "load_fit",
-    "POSTERIOR_FILE",
-    "fit",
-    "resolve_backend",
-    "task_log_likelihood",
-    "add_log_likelihood",
-    "REPORTED_VARS",
+    "POSTERIOR_FILE", "REPORTED_VARS", "ChoiceFit", "add_log_likelihood", "fit", "load_fit", "population_summary",
+    "resolve_backend", "save_fit", "task_log_likelihood",
 ]

@@ -9,7 +9,7 @@ A results folder holds
     ArviZ InferenceData as NetCDF: posterior (reported variables only),
     sample_stats, observed_data, constant_data (the panel arrays) and, with
     person draws, log_likelihood at the task level. Its attributes carry the
-    spec (TOML), the data summary, the internal layout and the fit info (JSON).
+    spec (TOML), the data summary, the panel's terms and the fit info (JSON).
 ``population.csv``
     Population parameters with 90 % equal-tailed intervals and the implied
     moments of each taste distribution.
@@ -164,7 +164,6 @@ def _attrs_for(result: ChoiceFit) -> dict[str, str]:
     return {
         "hierchoice_spec_toml": result.spec.to_toml(),
         "hierchoice_data_summary": json.dumps(result.panel.summary.to_dict()),
-        "hierchoice_layout": json.dumps(result.layout.to_dict()),
         "hierchoice_fit_info": json.dumps(result.info, default=str),
         "hierchoice_terms": json.dumps([vars(t) for t in result.panel.terms]),
     }

@@ -212,7 +212,7 @@ def fit(
     chosen_backend = resolve_backend(s.backend)
     layout = model_layout(panel, spec)
     t0 = time.perf_counter()
-    model = build_model(panel, spec, person_batch=batch)
+    model = build_model(panel, spec, person_batch=batch, layout=layout)
     keep = [v for v in REPORTED_VARS if v in model.named_vars]
     if not s.store_person_draws:
         keep = [v for v in keep if v not in ("person_taste", "person_wtp")]

@@ -7,30 +7,15 @@ May import: ``hierchoice.data``, ``hierchoice.spec``, ``hierchoice.exceptions``.
 
 from __future__ import annotations
 
-from .build import (
-    POPULATION_VARS,
-    PRIOR_SD,
-    ModelLayout,
-    build_model,
-    model_layout,
-)
+from .build import POPULATION_VARS, PRIOR_SD, ModelLayout, build_model, model_layout
 from .likelihood import (
     DifferenceData,
     choice_probabilities,
     difference_data,
-    task_loglik_graph,
     task_loglik_numpy,
 )
 
 __all__ = [
-    "ModelLayout",
-    "model_layout",
-    "build_model",
-    "POPULATION_VARS",
-    "PRIOR_SD",
-    "DifferenceData",
-    "difference_data",
-    "task_loglik_numpy",
-    "task_loglik_graph",
-    "choice_probabilities",
+    "POPULATION_VARS", "PRIOR_SD", "DifferenceData", "ModelLayout", "build_model", "choice_probabilities",
+    "difference_data", "model_layout", "task_loglik_numpy",
 ]

@@ -29,7 +29,7 @@ See ``docs/model.md`` for the priors.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -40,6 +40,7 @@ from ..data.panel import ChoicePanel, Term
 from ..exceptions import SpecError
 from ..spec import Spec, load_spec
 from .likelihood import DifferenceData, difference_data, task_loglik_graph
+from .transforms import TasteMap, latent_to_coefficient
 
 __all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD"]
 
@@ -94,6 +95,12 @@ class ModelLayout:
     @property
     def shifted_names(self) -> list[str]:
         return [self.terms[k].name for k in self.shifted]
+
+    @property
+    def taste_map(self) -> TasteMap:
+        """Which attributes are lognormal, their signs, and the price column in WTP space."""
+        return TasteMap.of([t.taste for t in self.terms], [self.sign(k) for k in range(len(self.terms))],
+                           self.price if self.wtp_space else None)
 
     def is_lognormal(self, k: int) -> bool:
         return self.terms[k].taste == "lognormal"
@@ -280,7 +287,7 @@ def _panel_loglik(data: DifferenceData, beta, likelihood: str, person_batch: int
 
 
 def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None, *,  # type: ignore[no-untyped-def]
-                likelihood: str = "fused", person_batch: int | None = None):
+                likelihood: str = "fused", person_batch: int | None = None, layout: ModelLayout | None = None):
     r"""Build the panel mixed logit of ``panel`` under ``spec`` as a :class:`pymc.Model`.
 
     A pure function: it reads the panel and the spec and samples nothing.
@@ -303,6 +310,9 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
         evaluation) and scaled by ``n_persons / person_batch``, an unbiased estimate
         of the full panel log-likelihood (Hoffman et al. 2013, JMLR 14). Not for
         NUTS, which needs the exact log-posterior.
+    layout : ModelLayout, optional
+        The panel's :func:`model_layout` under ``spec`` when the caller already has it
+        (it reads the whole panel to set the internal scaling).
 
     Returns
     -------
@@ -326,7 +336,7 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
         raise SpecError(f"person_batch must be a positive number of persons (fused likelihood), got {person_batch!r}.")
     spec = panel.spec if spec is None else load_spec(spec)
     panel = panel.with_spec(spec)
-    layout = model_layout(panel, spec)
+    layout = model_layout(panel, spec) if layout is None else layout
     data = _difference_data(panel, layout)
     names = layout.names
     rnd = list(layout.random)
@@ -380,22 +390,10 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
                 dev = pt.dot(e, chol.T) if layout.correlated else e * sd
                 theta = theta + _into_columns(dev, rnd, n_k)
 
-        # coefficients of the standardised attributes
-        lognormal = np.array([layout.is_lognormal(k) for k in range(n_k)])
-        if lognormal.any():
-            sign = np.array([layout.sign(k) for k in range(n_k)])
-            # exp only where lognormal, so a large linear taste can never overflow into the gradient
-            coef = pt.switch(lognormal[None, :], sign[None, :] * pt.exp(pt.switch(lognormal[None, :], theta, 0.0)),
-                             theta)
-        else:
-            coef = theta
-        if layout.wtp_space:
-            assert layout.price is not None
-            lam = -coef[:, layout.price]  # lambda > 0
-            is_price = np.arange(n_k) == layout.price
-            beta = coef * pt.switch(is_price[None, :], 1.0, lam[:, None])
-        else:
-            beta = coef
+        # coefficients of the standardised attributes (coef: before the WTP-space product)
+        lognormal = layout.taste_map.lognormal
+        coef = latent_to_coefficient(theta, replace(layout.taste_map, price=None), backend="pytensor")
+        beta = latent_to_coefficient(theta, layout.taste_map, backend="pytensor")
         beta = pt.broadcast_to(beta, (n_p, n_k))
 
         pm.Potential("panel_loglik", _panel_loglik(data, beta, likelihood, person_batch))

@@ -67,7 +67,6 @@ __all__ = ["PanelLogitLoglik", "panel_logit_loglik", "loglik_and_grad", "op_layo
 _LOG2E = 1.4426950408889634
 _LN2_HI = 6.93147180369123816490e-01  # ln 2 split in two for an exact k * ln2 (Cody & Waite 1980)
 _LN2_LO = 1.90821492927058770002e-10
-_SQRT2 = 1.4142135623730951
 _ROUND = 6755399441055744.0  # 1.5 * 2**52: adding it rounds to an integer held in the low mantissa bits
 _ROUND_BITS = 0x4338000000000000  # its bits
 _SQRT_HALF_BITS = 0x3FE6A09E667F3BCD  # bits of sqrt(1/2)
