@@ -7,6 +7,7 @@ print or report them. Nothing here raises.
 
 from __future__ import annotations
 
+import logging
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import asdict, dataclass
@@ -14,7 +15,10 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Check", "VERDICTS", "overall_verdict", "checks_frame", "json_number", "jsonable"]
+__all__ = ["Check", "VERDICTS", "warning_record", "log_records", "overall_verdict", "checks_frame", "json_number",
+           "jsonable"]
+
+log = logging.getLogger("hierchoice")
 
 VERDICTS = ("pass", "warn", "fail")
 _RANK = {v: i for i, v in enumerate(VERDICTS)}
@@ -56,11 +60,46 @@ class Check:
     reference: str = ""
     detail: str = ""
 
+    @property
+    def kind(self) -> str:
+        """The problem's name (the same as ``check``)."""
+        return self.check
+
+    @property
+    def where(self) -> str:
+        """The attribute, alternative, variable or persons concerned (the same as ``subject``)."""
+        return self.subject
+
+    @property
+    def message(self) -> str:
+        """What it means and what to do (the ``advice``, or the rule on a pass)."""
+        return self.advice or self.detail or self.rule
+
+    @property
+    def level(self) -> str:
+        """``"warning"`` for a warn or fail verdict, else ``"info"``."""
+        return "info" if self.verdict == "pass" else "warning"
+
     def to_dict(self) -> dict[str, Any]:
         out = asdict(self)
         out["value"] = json_number(self.value)
         out["threshold"] = json_number(self.threshold)
         return out
+
+
+def warning_record(kind: str, level: str, message: str, where: str = "") -> Check:
+    """A problem found while computing a result (a WTP ratio, a share), as a :class:`Check` with no measured value.
+
+    ``level`` is ``"warning"`` (verdict ``"warn"``) or ``"info"`` (verdict ``"pass"``); ``message`` says what it
+    means for the reader and what to do; ``where`` names the attribute, alternative or persons concerned.
+    """
+    return Check(kind, where, math.nan, math.nan, "", "warn" if level == "warning" else "pass", advice=message)
+
+
+def log_records(records: Iterable[Check]) -> None:
+    """Send records to the ``hierchoice`` logger (warn and fail as warnings, passes as info)."""
+    for rec in records:
+        log.log(logging.WARNING if rec.level == "warning" else logging.INFO, "%s: %s", rec.kind, rec.message)
 
 
 def overall_verdict(checks: Iterable[Check]) -> str:

@@ -69,17 +69,16 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._records import Check, log_records, warning_record
 from ..data.panel import _label, read_table
 from ..exceptions import DataError, FitError, SpecError, first_few
 from ..inference.results import ChoiceFit
 from ..model.likelihood import choice_probabilities
 from .tastes import (
     DEFAULT_PROB,
-    WarningRecord,
     _person_draws,
     _thin,
     check_prob,
-    log_records,
     simulate_population_tastes,
     summarize_draws,
 )
@@ -144,7 +143,7 @@ def market_design(result: ChoiceFit, market: pd.DataFrame | str | Path) -> xr.Da
     xarray.DataArray
         Dims (alternative, attribute): the model's terms for each row of the
         market, coded like the fitted panel. ``attrs["warnings"]`` lists
-        :class:`~hierchoice.tastes.WarningRecord` objects for values outside the
+        :class:`~hierchoice._records.Check` objects for values outside the
         design's range (extrapolation).
 
     Raises
@@ -178,7 +177,7 @@ def market_design(result: ChoiceFit, market: pd.DataFrame | str | Path) -> xr.Da
     opt_out = spec.data.opt_out
     is_opt_out = np.array([a == opt_out for a in labels])
     X = np.zeros((len(labels), len(panel.terms)))
-    records: list[WarningRecord] = []
+    records: list[Check] = []
     for k, term in enumerate(panel.terms):
         if term.kind == "constant":
             X[:, k] = [float(a == term.source) for a in labels]
@@ -226,7 +225,7 @@ def market_design(result: ChoiceFit, market: pd.DataFrame | str | Path) -> xr.Da
             lo, hi = span
             outside = (~is_opt_out) & ((values < lo) | (values > hi))
             for j in np.flatnonzero(outside):
-                records.append(WarningRecord(
+                records.append(warning_record(
                     "extrapolation", "warning",
                     f"{column} = {values[j]:g} for {labels[j]!r} is outside the range of the design "
                     f"({lo:g} to {hi:g}): the prediction extrapolates the fitted tastes beyond what respondents saw.",
@@ -303,7 +302,7 @@ def share_draws(
     return out
 
 
-def _finish(table: pd.DataFrame, prob: float, persons: str, records: Sequence[WarningRecord]) -> pd.DataFrame:
+def _finish(table: pd.DataFrame, prob: float, persons: str, records: Sequence[Check]) -> pd.DataFrame:
     table["prob"] = prob
     table.attrs.update(prob=prob, persons=persons, warnings=list(records))
     log_records(records)

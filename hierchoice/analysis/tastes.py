@@ -45,7 +45,6 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass
 from typing import Any
 
 import numpy as np
@@ -60,8 +59,6 @@ from ..model.transforms import latent_to_coefficient
 
 __all__ = [
     "DEFAULT_PROB",
-    "WarningRecord",
-    "log_records",
     "check_prob",
     "summarize_draws",
     "population_taste_draws",
@@ -81,34 +78,6 @@ SAMPLE_DIMS = ("chain", "draw")
 
 #: The summary columns every table in tastes / wtp / shares carries, in order.
 SUMMARY_COLUMNS = ("mean", "sd", "median", "hdi_low", "hdi_high", "eti_low", "eti_high")
-
-
-# --------------------------------------------------------------------------- warning records
-
-
-@dataclass(frozen=True)
-class WarningRecord:
-    """A problem found while computing a result, returned as data rather than raised.
-
-    ``kind`` names the problem (``"price_near_zero"``, ``"no_finite_moments"``,
-    ``"extrapolation"``, ...), ``level`` is ``"info"`` or ``"warning"``, ``message``
-    says what it means for the reader and what to do, and ``where`` names the
-    attribute, alternative or persons concerned.
-    """
-
-    kind: str
-    level: str
-    message: str
-    where: str = ""
-
-    def to_dict(self) -> dict[str, str]:
-        return asdict(self)
-
-
-def log_records(records: Sequence[WarningRecord]) -> None:
-    """Send warning records to the ``hierchoice`` logger."""
-    for rec in records:
-        log.log(logging.WARNING if rec.level == "warning" else logging.INFO, "%s: %s", rec.kind, rec.message)
 
 
 # --------------------------------------------------------------------------- summaries

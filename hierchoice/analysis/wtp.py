@@ -45,15 +45,14 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._records import Check, log_records, warning_record
 from ..exceptions import SpecError, first_few
 from ..inference.results import ChoiceFit
 from .tastes import (
     DEFAULT_PROB,
-    WarningRecord,
     _person_draws,
     _quantile_name,
     check_prob,
-    log_records,
     simulate_population_tastes,
     summarize_draws,
 )
@@ -183,7 +182,7 @@ def population_wtp_draws(
     return ds
 
 
-def _population_records(result: ChoiceFit, mass: float) -> tuple[list[WarningRecord], bool]:
+def _population_records(result: ChoiceFit, mass: float) -> tuple[list[Check], bool]:
     """Warning records for the population WTP, and whether to withhold means."""
     if result.layout.wtp_space:
         return [], False
@@ -191,7 +190,7 @@ def _population_records(result: ChoiceFit, mass: float) -> tuple[list[WarningRec
     taste = _price_taste(result)
     records = []
     if taste == "normal":
-        records.append(WarningRecord(
+        records.append(warning_record(
             "no_finite_moments", "warning",
             f"The price coefficient {price!r} has a normal taste, so across people it has density at zero and "
             f"WTP = -beta / beta_{price} is a ratio with no finite mean or variance (here {100 * mass:.1f} % of "
@@ -202,7 +201,7 @@ def _population_records(result: ChoiceFit, mass: float) -> tuple[list[WarningRec
         ))
         return records, True
     if mass > MAX_NEAR_ZERO_MASS:
-        records.append(WarningRecord(
+        records.append(warning_record(
             "price_near_zero", "warning",
             f"{100 * mass:.1f} % of the price coefficients of {price!r} drawn from the population (over the "
             f"posterior draws) lie near zero (above -{NEAR_ZERO:g} x the median magnitude) or have the wrong "
@@ -243,7 +242,7 @@ def population_wtp(
         ``mean_across_people`` (omitted when it does not exist),
         ``p10_across_people``, ... or ``share_positive``. The posterior
         ``mean``/``sd`` columns are empty when the price coefficient has mass near
-        zero. ``attrs["warnings"]`` holds the :class:`~hierchoice.tastes.WarningRecord`
+        zero. ``attrs["warnings"]`` holds the :class:`~hierchoice._records.Check`
         list and ``attrs["robust"]`` whether means were withheld.
     """
     prob = check_prob(prob)
@@ -281,7 +280,7 @@ def person_wtp(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame
     """
     prob = check_prob(prob)
     w = person_wtp_draws(result)
-    records: list[WarningRecord] = []
+    records: list[Check] = []
     n_p = w.sizes["person"]
     if result.layout.wtp_space:
         mass = np.zeros(n_p)
@@ -298,7 +297,7 @@ def person_wtp(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame
                    "density at zero and their WTP ratio has no finite mean" if normal else
                    f"their posterior of the price coefficient {price_name!r} has more than "
                    f"{100 * MAX_NEAR_ZERO_MASS:g} % of its draws near zero")
-            records.append(WarningRecord(
+            records.append(warning_record(
                 "price_near_zero", "warning",
                 f"{len(persons)} of {n_p} persons ({first_few(persons)}): {why}. Their WTP means are not "
                 "reported; read the medians and intervals.",
