@@ -108,7 +108,7 @@ def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str,
 
 
 def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
-    """Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals.
+    """Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals (``eti_low``, ``eti_high``).
 
     Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]``,
     ``covariate_effect[<cov>,<attr>]`` and, for each attribute, the implied mean,
@@ -127,7 +127,7 @@ def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
     def add(name: str, samples: np.ndarray, kind: str) -> None:
         flat = np.asarray(samples).reshape(-1)
         rows.append({"parameter": name, "kind": kind, "mean": flat.mean(), "sd": flat.std(ddof=1) if flat.size > 1 else 0.0,
-                     f"q{lo_q:.3g}": np.quantile(flat, lo_q), f"q{hi_q:.3g}": np.quantile(flat, hi_q)})
+                     "eti_low": np.quantile(flat, lo_q), "eti_high": np.quantile(flat, hi_q)})
 
     mean = post["taste_mean"]
     sd = post["taste_sd"] if "taste_sd" in post else None
@@ -157,7 +157,9 @@ def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
         s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
         for key, vals in _lognormal_moments(m, s_, layout.sign(k)).items():
             add(f"{key}[{name}]", vals, f"taste across people ({key.replace('implied_', '')})")
-    return pd.DataFrame(rows).set_index("parameter")
+    table = pd.DataFrame(rows).set_index("parameter")
+    table.attrs["prob"] = prob
+    return table
 
 
 def _attrs_for(result: ChoiceFit) -> dict[str, str]:
