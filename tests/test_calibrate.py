@@ -21,6 +21,8 @@ import hierchoice as hc
 from hierchoice._io import MARKER
 from hierchoice import validation as cal
 from hierchoice.validation.distributed import local_cluster, run_tasks, task_seed, task_seed_sequence
+from hierchoice.validation.fitters import _STREAM_FIT
+from hierchoice.validation.sbc import _thinned_ranks
 from hierchoice.exceptions import FitError, SpecError
 
 #: Short chains: enough for this one-attribute model (median bulk ESS of 100 draws is about 50-100).
@@ -162,10 +164,10 @@ def sbc_nuts(client, design):
 def test_thinned_ranks_count_draws_below_and_break_ties_at_random():
     draws = np.arange(10, dtype=float)[:, None] / 10  # 0.0 .. 0.9; thinned to 5: 0, .2, .4, .6, .8 (by hand)
     rng = np.random.default_rng(0)
-    assert cal._thinned_ranks(np.array([0.5]), draws, 5, rng)[0] == 3
-    assert cal._thinned_ranks(np.array([-1.0]), draws, 5, rng)[0] == 0
-    assert cal._thinned_ranks(np.array([9.0]), draws, 5, rng)[0] == 5
-    tied = [int(cal._thinned_ranks(np.array([0.4]), draws, 5, rng)[0]) for _ in range(200)]
+    assert _thinned_ranks(np.array([0.5]), draws, 5, rng)[0] == 3
+    assert _thinned_ranks(np.array([-1.0]), draws, 5, rng)[0] == 0
+    assert _thinned_ranks(np.array([9.0]), draws, 5, rng)[0] == 5
+    tied = [int(_thinned_ranks(np.array([0.4]), draws, 5, rng)[0]) for _ in range(200)]
     assert set(tied) == {2, 3}  # 0.4 ties one kept draw: rank 2 or 3, each about half the time
     assert 60 < tied.count(2) < 140
 
@@ -320,7 +322,7 @@ def test_a_killed_worker_loses_no_finished_fit(client, sbc_nuts, design, tmp_pat
 
 def test_a_failing_fit_is_retried_then_reported_and_the_others_kept(client, design, tmp_path):
     log = str(tmp_path / "calls.log")
-    seeds = [task_seed(SEED, i, cal._STREAM_FIT) for i in range(6)]
+    seeds = [task_seed(SEED, i, _STREAM_FIT) for i in range(6)]
     fitter = Logged(PriorDraws(), log, fail_seed=seeds[2])
     res = cal.simulation_based_calibration(design, fits=6, thin_to=THIN_TO, fitter=fitter, seed=SEED,
                                            client=client, retries=1, progress=False)

@@ -1,30 +1,28 @@
 """Beside the pipeline: many fits of simulated data to validate a design and a method.
 
-Owns: simulation-based calibration, parameter recovery and power analysis (:mod:`~hierchoice.validation.calibrate`)
-and running independent fits on Dask with deterministic seeds (:mod:`~hierchoice.validation.distributed`).
+Three questions that one fit cannot answer, each answered by fitting the model to many simulated data sets
+(independent tasks, run on ``dask.distributed``; a local cluster of single-threaded worker processes by default).
+Each workload returns a labelled :class:`xarray.Dataset`.
+
+Owns, one concern a module (after the arrow: the modules of this package that it may import):
+
+* :mod:`~hierchoice.validation.distributed`: running independent fits on Dask with deterministic seeds;
+* :mod:`~hierchoice.validation.fitters`: the :class:`Fitter` protocol and :class:`NutsFitter`, the default fitter;
+* :mod:`~hierchoice.validation.results` <- ``distributed``: per-fit bookkeeping, :func:`save_result` and
+  :func:`load_result` (NetCDF);
+* :mod:`~hierchoice.validation.sbc` <- ``distributed``, ``fitters``, ``results``: simulation-based calibration on
+  your own design;
+* :mod:`~hierchoice.validation.recovery` <- ``distributed``, ``fitters``, ``results``: bias and interval coverage
+  at fixed true values;
+* :mod:`~hierchoice.validation.power` <- ``recovery``, ``distributed``, ``fitters``, ``results``: how a target
+  improves with the number of respondents;
+* :mod:`~hierchoice.validation.plots` <- ``sbc``: rank histograms, ECDF differences, power curves.
+
 May import: ``hierchoice.diagnostics``, ``hierchoice.inference`` and everything below them.
 """
 
 from __future__ import annotations
 
-from .calibrate import (
-    Fitter,
-    NutsFitter,
-    SdDetection,
-    WtpWidth,
-    ecdf_band,
-    format_calibration,
-    load_result,
-    parameter_recovery,
-    plot_ecdf_difference,
-    plot_power_curve,
-    plot_rank_histograms,
-    power_analysis,
-    rank_uniformity,
-    save_result,
-    simulate_choices,
-    simulation_based_calibration,
-)
 from .distributed import (
     SINGLE_THREAD_ENV,
     TaskFailure,
@@ -33,6 +31,12 @@ from .distributed import (
     task_seed,
     task_seed_sequence,
 )
+from .fitters import Fitter, NutsFitter
+from .plots import plot_ecdf_difference, plot_power_curve, plot_rank_histograms
+from .power import SdDetection, WtpWidth, power_analysis
+from .recovery import parameter_recovery
+from .results import load_result, save_result
+from .sbc import ecdf_band, format_calibration, rank_uniformity, simulate_choices, simulation_based_calibration
 
 __all__ = [
     "Fitter",

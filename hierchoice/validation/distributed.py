@@ -1,9 +1,11 @@
 """Many independent tasks (model fits) on ``dask.distributed``.
 
-The validation workloads of :mod:`hierchoice.calibrate` fit the same model to
-hundreds of simulated data sets. Each fit is an independent task; this module
-runs a list of them on a `dask.distributed <https://distributed.dask.org>`_
-cluster and collects what comes back:
+The validation workloads (:mod:`~hierchoice.validation.sbc`,
+:mod:`~hierchoice.validation.recovery`, :mod:`~hierchoice.validation.power`)
+fit the same model to hundreds of simulated data sets. Each fit is an
+independent task; this module runs a list of them on a
+`dask.distributed <https://distributed.dask.org>`_ cluster and collects what
+comes back:
 
 * **Where.** By default a :class:`distributed.LocalCluster` of worker
   *processes* on this machine, one thread each, with ``OMP_NUM_THREADS``,
