@@ -3,19 +3,18 @@
 Owns: :class:`ChoicePanel` (validated, labelled dense arrays), reading CSV / Parquet / frames, wide <-> long,
 dynamics (lagged choice, initial conditions), and :mod:`~hierchoice.data.simulate` (panels with known tastes).
 May import: ``hierchoice.spec``, ``hierchoice.exceptions``, ``hierchoice._io``. Knows nothing of PyMC.
+
+Inside, imports run one way: :mod:`~hierchoice.data.validate` (checks of the long table, ``ValidationSummary``)
+<- :mod:`~hierchoice.data.read` (files, wide <-> long) and :mod:`~hierchoice.data.coding` (``Term``, attribute
+coding) <- :mod:`~hierchoice.data.dynamics` (task order, lags, initial conditions) <- :mod:`~hierchoice.data.panel`
+(``ChoicePanel``, ``load_panel``, the build and the dense arrays).
 """
 
 from __future__ import annotations
 
-from .panel import (
-    ChoicePanel,
-    Term,
-    ValidationSummary,
-    load_panel,
-    long_to_wide,
-    read_table,
-    wide_to_long,
-)
+from .coding import Term
+from .panel import ChoicePanel, load_panel
+from .read import long_to_wide, read_table, wide_to_long
 from .simulate import (
     SimAttribute,
     SimulatedPanel,
@@ -24,6 +23,7 @@ from .simulate import (
     ferry_scenario,
     simulate_panel,
 )
+from .validate import ValidationSummary
 
 __all__ = [
     "Term",

@@ -1,0 +1,156 @@
+"""Reading choice tables: CSV, Parquet or DataFrame in, and wide (one row per task) <-> long (one row per alternative).
+
+Owns: :func:`read_table`, :func:`wide_to_long` and :func:`long_to_wide`.
+May import: ``hierchoice.exceptions``, ``hierchoice.spec`` and :mod:`hierchoice.data.validate` (for the message
+helpers and the reserved column names).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ..exceptions import DataError, first_few
+from ..spec import Spec, WideSpec, load_spec
+from .validate import _check_reserved, _label, _rows
+
+__all__ = ["long_to_wide", "read_table", "wide_to_long"]
+
+
+def read_table(source: pd.DataFrame | str | Path) -> pd.DataFrame:
+    """Read a DataFrame, a CSV file or a Parquet file into a DataFrame (a copy)."""
+    if isinstance(source, pd.DataFrame):
+        return source.copy()
+    path = Path(source)
+    if not path.exists():
+        raise DataError(f"Data file {str(path)!r} does not exist.")
+    suffix = path.suffix.lower()
+    try:
+        if suffix in (".parquet", ".pq"):
+            return pd.read_parquet(path)
+        if suffix in (".csv", ".txt", ".gz"):
+            return pd.read_csv(path)
+    except (ValueError, OSError, ImportError) as err:
+        raise DataError(f"Could not read {str(path)!r}: {err}") from None
+    except pd.errors.ParserError as err:  # pragma: no cover - pandas subclasses ValueError today
+        raise DataError(f"Could not parse {str(path)!r}: {err}") from None
+    raise DataError(f"Data file {str(path)!r}: unknown format {suffix!r}; use .csv or .parquet.")
+
+
+# --------------------------------------------------------------------------- wide <-> long
+
+
+def wide_to_long(frame: pd.DataFrame, spec: Spec | Mapping[str, Any] | str | Path) -> pd.DataFrame:
+    """Turn a wide table (one row per task) into the long format the panel reads.
+
+    The spec's ``[wide]`` table names the alternatives, the column holding the
+    chosen alternative and the column-name ``pattern`` (for example
+    ``"{attribute}{alternative}"`` turns ``price`` and ``1`` into ``price1``).
+    Attributes with no per-alternative column are copied to every alternative
+    (person covariates, for example).
+    """
+    spec = load_spec(spec)
+    wide, cols = spec.wide, spec.columns
+    if wide is None:
+        raise DataError("wide_to_long needs a spec with a [wide] table.")
+    if len(frame) == 0:
+        raise DataError("The wide choice table is empty: no rows to read.")
+    frame = frame.copy()
+    frame.columns = [str(c) for c in frame.columns]
+    for role, c in (("person", cols.person), ("task", cols.task), ("wide.choice", wide.choice)):
+        if c not in frame.columns:
+            raise DataError(f"Missing column {c!r} ({role}) in the wide table; it has {first_few(list(frame.columns), 12)}.")
+    _check_reserved({"person": cols.person, "task": cols.task, "alternative": cols.alternative,
+                     "chosen": cols.chosen}
+                    | ({"available": cols.available} if cols.available else {})
+                    | {f"attribute {a.name}": a.source for a in spec.attributes.values()}
+                    | {f"covariate {c}": c for c in (spec.covariates.columns if spec.covariates else ())})
+    labels = wide.choice_labels or {a: a for a in wide.alternatives}
+    choice = frame[wide.choice].map(lambda v: None if pd.isna(v) else _label(v))
+    mapped = choice.map(lambda v: labels.get(v) if v is not None else None)
+    bad = mapped.isna() | ~mapped.isin(list(wide.alternatives))
+    if bad.any():
+        raise DataError(
+            f"Column {wide.choice!r} has values {first_few(choice[bad].astype(str).unique().tolist())} at rows "
+            f"{_rows(frame, bad)} that are not alternatives {list(wide.alternatives)} "
+            "(map them with wide.choice_labels)."
+        )
+    carried = [c for c in (spec.covariates.columns if spec.covariates else ()) if c in frame.columns]
+    pieces = [_wide_piece(frame, spec, wide, alt, mapped, carried) for alt in wide.alternatives]
+    for attr in spec.attributes.values():
+        found = [wide.pattern.format(attribute=attr.source, alternative=a) in frame.columns for a in wide.alternatives]
+        if not any(found) and attr.source not in frame.columns:
+            expect = wide.pattern.format(attribute=attr.source, alternative=wide.alternatives[0])
+            raise DataError(
+                f"Attribute {attr.name!r}: no column {expect!r} (pattern {wide.pattern!r}) nor {attr.source!r} "
+                "in the wide table."
+            )
+    long = pd.concat(pieces, ignore_index=True)
+    long = long.sort_values(["_row", cols.alternative], key=lambda s: s.map(
+        {a: i for i, a in enumerate(wide.alternatives)}) if s.name == cols.alternative else s, kind="stable")
+    return long.drop(columns="_row").reset_index(drop=True)
+
+
+def _wide_piece(frame: pd.DataFrame, spec: Spec, wide: WideSpec, alt: str, mapped: pd.Series,
+                carried: list[str]) -> pd.DataFrame:
+    """The long rows of alternative ``alt``: one per wide row, with ``_row`` the wide row's position."""
+    cols = spec.columns
+    piece = pd.DataFrame({
+        cols.person: frame[cols.person].to_numpy(),
+        cols.task: frame[cols.task].to_numpy(),
+        cols.alternative: alt,
+        cols.chosen: (mapped == alt).astype(int).to_numpy(),
+        "_row": np.arange(len(frame)),
+    })
+    for attr in spec.attributes.values():
+        name = wide.pattern.format(attribute=attr.source, alternative=alt)
+        if name in frame.columns:
+            piece[attr.source] = frame[name].to_numpy()
+        elif attr.source in frame.columns:
+            piece[attr.source] = frame[attr.source].to_numpy()
+        else:
+            piece[attr.source] = np.nan  # absent for this alternative: must be unavailable or opt-out
+    if wide.available_pattern is not None and cols.available:
+        name = wide.available_pattern.format(alternative=alt)
+        piece[cols.available] = frame[name].to_numpy() if name in frame.columns else 1
+    elif cols.available:
+        piece[cols.available] = 1
+    for c in carried:
+        piece[c] = frame[c].to_numpy()
+    return piece
+
+
+def long_to_wide(frame: pd.DataFrame, spec: Spec | Mapping[str, Any] | str | Path) -> pd.DataFrame:
+    """The inverse of :func:`wide_to_long` for tables whose tasks list every alternative."""
+    spec = load_spec(spec)
+    wide, cols = spec.wide, spec.columns
+    if wide is None:
+        raise DataError("long_to_wide needs a spec with a [wide] table.")
+    inverse = {v: k for k, v in (wide.choice_labels or {a: a for a in wide.alternatives}).items()}
+    sources = list(dict.fromkeys(a.source for a in spec.attributes.values()))
+    carried = list(spec.covariates.columns) if spec.covariates else []
+    with_avail = wide.available_pattern is not None and cols.available is not None
+    needed = [cols.person, cols.task, cols.alternative, cols.chosen] + sources + carried
+    needed += [cols.available] if with_avail else []
+    absent = [c for c in needed if c not in frame.columns]
+    if absent:
+        raise DataError(f"Missing column(s) {first_few(absent)} in the long table; it has "
+                        f"{first_few(list(frame.columns), 12)}.")
+    frame = frame.copy()
+    frame[cols.alternative] = frame[cols.alternative].map(_label)
+    keys = [cols.person, cols.task]
+    out = frame[keys + carried].drop_duplicates(keys).reset_index(drop=True)
+    picked = frame.loc[frame[cols.chosen].astype(bool), keys + [cols.alternative]]
+    out = out.merge(picked, on=keys, how="left").rename(columns={cols.alternative: wide.choice})
+    out[wide.choice] = out[wide.choice].map(inverse)
+    for alt in wide.alternatives:
+        part = frame.loc[frame[cols.alternative] == alt, keys + sources + ([cols.available] if with_avail else [])]
+        names = {s: wide.pattern.format(attribute=s, alternative=alt) for s in sources}
+        if with_avail:
+            names[cols.available] = wide.available_pattern.format(alternative=alt)  # type: ignore[union-attr]
+        out = out.merge(part.rename(columns=names), on=keys, how="left")
+    return out
