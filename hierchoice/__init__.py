@@ -3,8 +3,9 @@
 The package is laid out as the pipeline it runs, each stage importing only the stages below it::
 
     spec, exceptions, _io, _records      the spec and the low helpers every stage uses
-    data/          table -> validated ChoicePanel; invented panels
+    data/          table -> validated ChoicePanel
     model/         panel + spec -> PyMC model; the likelihood and its fused Op
+    simulate       invented panels with known tastes (beside the pipeline)
     inference/     sampling (fit) and the result object with its results folder
     diagnostics/   convergence, predictive checks, LOO, plots, the check-folder job
     analysis/      tastes, willingness-to-pay, shares
@@ -27,20 +28,7 @@ from .analysis import (
     predict_shares,
     sensitivity,
 )
-from .data import (
-    ChoicePanel,
-    SimAttribute,
-    SimulatedPanel,
-    Term,
-    ValidationSummary,
-    benchmark_scenario,
-    ferry_scenario,
-    load_panel,
-    long_to_wide,
-    read_table,
-    simulate_panel,
-    wide_to_long,
-)
+from .data import ChoicePanel, Term, ValidationSummary, load_panel, long_to_wide, read_table, wide_to_long
 from .diagnostics import (
     check_folder,
     compare_models,
@@ -64,6 +52,13 @@ from .inference import (
 )
 from .model import build_model, model_layout
 from .report import write_report
+from .simulate import (
+    SimAttribute,
+    SimulatedPanel,
+    benchmark_scenario,
+    ferry_scenario,
+    simulate_panel,
+)
 from .spec import Spec, load_spec
 from .validation import (
     parameter_recovery,

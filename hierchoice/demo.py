@@ -6,7 +6,7 @@ from pathlib import Path
 
 from ._io import atomic_write_text, make_folder, write_with
 from .data.panel import ChoicePanel
-from .data.simulate import ferry_scenario
+from .simulate import ferry_scenario
 from .spec import Spec, dumps_toml
 
 __all__ = ["write_demo_data", "run_demo"]

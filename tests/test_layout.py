@@ -21,6 +21,7 @@ FLOORS = {
     "spec": 2,
     "data": 3,
     "model": 4,
+    "simulate": 5,
     "inference": 5,
     "diagnostics": 6, "analysis": 6,
     "validation": 7, "report": 7,

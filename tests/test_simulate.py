@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from hierchoice import ChoicePanel, SimAttribute, Spec, SpecError, benchmark_scenario, ferry_scenario, simulate_panel
-from hierchoice.data.simulate import draw_choices
+from hierchoice.simulate import draw_choices
 
 
 def test_ferry_scenario_shapes_and_spec() -> None:

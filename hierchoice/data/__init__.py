@@ -1,7 +1,7 @@
-"""Stage 1, the data: reading choice tables, validating and coding them into panel arrays, and invented panels.
+"""Stage 1, the data: reading choice tables, validating and coding them into panel arrays.
 
 Owns: :class:`ChoicePanel` (validated, labelled dense arrays), reading CSV / Parquet / frames, wide <-> long,
-dynamics (lagged choice, initial conditions), and :mod:`~hierchoice.data.simulate` (panels with known tastes).
+dynamics (lagged choice, initial conditions).
 May import: ``hierchoice.spec``, ``hierchoice.exceptions``, ``hierchoice._io``. Knows nothing of PyMC.
 
 Inside, imports run one way: :mod:`~hierchoice.data.validate` (checks of the long table, ``ValidationSummary``)
@@ -15,14 +15,6 @@ from __future__ import annotations
 from .coding import Term
 from .panel import ChoicePanel, load_panel
 from .read import long_to_wide, read_table, wide_to_long
-from .simulate import (
-    SimAttribute,
-    SimulatedPanel,
-    benchmark_scenario,
-    draw_choices,
-    ferry_scenario,
-    simulate_panel,
-)
 from .validate import ValidationSummary
 
 __all__ = [
@@ -33,10 +25,4 @@ __all__ = [
     "wide_to_long",
     "long_to_wide",
     "load_panel",
-    "SimAttribute",
-    "SimulatedPanel",
-    "simulate_panel",
-    "ferry_scenario",
-    "benchmark_scenario",
-    "draw_choices",
 ]

@@ -23,7 +23,7 @@ Owns: :class:`ChoicePanel`, :func:`load_panel`, the build that runs the steps of
 :mod:`~hierchoice.data.validate`, :mod:`~hierchoice.data.coding` and
 :mod:`~hierchoice.data.dynamics` in order, and the padding into dense arrays.
 May import: ``hierchoice.exceptions``, ``hierchoice.spec`` and every other module of
-``hierchoice.data`` except :mod:`~hierchoice.data.simulate`; none of them imports it.
+``hierchoice.data``.
 """
 
 from __future__ import annotations

@@ -36,7 +36,13 @@ from .plots import plot_ecdf_difference, plot_power_curve, plot_rank_histograms
 from .power import SdDetection, WtpWidth, power_analysis
 from .recovery import parameter_recovery
 from .results import load_result, save_result
-from .sbc import ecdf_band, format_calibration, rank_uniformity, simulate_choices, simulation_based_calibration
+from .sbc import (
+    ecdf_band,
+    format_calibration,
+    rank_uniformity,
+    simulate_choices,
+    simulation_based_calibration,
+)
 
 __all__ = [
     "Fitter",

@@ -21,8 +21,8 @@ import numpy as np
 import xarray as xr
 
 from ..data.panel import Term
-from ..data.simulate import SimAttribute
 from ..exceptions import FitError, SpecError, first_few
+from ..simulate import SimAttribute
 from ..spec import _positive_int
 from .distributed import TaskFailure, run_tasks, task_seed
 from .fitters import _STREAM_DATA, _STREAM_FIT, Fitter, NutsFitter, _call_fitter
@@ -162,7 +162,7 @@ def power_analysis(
     r"""How a target quantity improves with the number of respondents, with Monte Carlo error.
 
     For each number of respondents in ``persons``, ``replications`` panels are
-    simulated (:func:`hierchoice.data.simulate.simulate_panel` with the true tastes of
+    simulated (:func:`hierchoice.simulate.simulate_panel` with the true tastes of
     ``attributes``), fitted, and scored by ``target``: :class:`WtpWidth` (the mean
     width of a WTP interval; standard error :math:`s/\sqrt R`) or
     :class:`SdDetection` (the probability of detecting a taste SD; binomial
@@ -176,7 +176,7 @@ def power_analysis(
     replications : int, default 20
         Per number of respondents.
     simulation : mapping, optional
-        Other keyword arguments of :func:`~hierchoice.data.simulate.simulate_panel`
+        Other keyword arguments of :func:`~hierchoice.simulate.simulate_panel`
         (``n_tasks``, ``alternatives``, ...); ``n_persons`` comes from ``persons``.
     fitter, seed, client, workers, retries, progress :
         As for :func:`parameter_recovery`. The replication ``r`` at ``n`` persons

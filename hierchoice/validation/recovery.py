@@ -1,7 +1,7 @@
 r"""Parameter recovery: bias and interval coverage of the population parameters at fixed true values.
 
 :func:`parameter_recovery`
-    At fixed true values (a :func:`hierchoice.data.simulate.simulate_panel`
+    At fixed true values (a :func:`hierchoice.simulate.simulate_panel`
     design), how biased are the posterior means and how often do the 50 % and
     90 % intervals cover the truth?
 
@@ -22,9 +22,9 @@ import numpy as np
 import xarray as xr
 
 from ..data.panel import ChoicePanel
-from ..data.simulate import SimAttribute, simulate_panel
 from ..diagnostics.checks import population_draws
 from ..exceptions import SpecError
+from ..simulate import SimAttribute, simulate_panel
 from ..spec import _positive_int
 from .distributed import TaskFailure, run_tasks, task_seed
 from .fitters import _STREAM_DATA, _STREAM_FIT, Fitter, NutsFitter, _call_fitter
@@ -34,7 +34,7 @@ __all__ = ["parameter_recovery"]
 
 
 def _truth_labels(truth: Mapping[str, Any]) -> dict[str, float]:
-    """The population truth of :func:`hierchoice.data.simulate.simulate_panel`, by parameter label."""
+    """The population truth of :func:`hierchoice.simulate.simulate_panel`, by parameter label."""
     out = {f"taste_mean[{k}]": float(v) for k, v in truth["taste_mean"].items()}
     out |= {f"taste_sd[{k}]": float(v) for k, v in truth["taste_sd"].items()}
     corr = truth.get("taste_corr")
@@ -104,7 +104,7 @@ def parameter_recovery(
 ) -> xr.Dataset:
     r"""Bias and interval coverage of the population parameters at fixed true values.
 
-    Each replication simulates a new panel with :func:`hierchoice.data.simulate.simulate_panel`
+    Each replication simulates a new panel with :func:`hierchoice.simulate.simulate_panel`
     (the true tastes of ``attributes``, the design options of ``simulation``, a
     seed of its own), fits it and compares the posterior with the truth. Over
     :math:`R` successful replications with posterior means :math:`\hat\theta_r`:
@@ -125,7 +125,7 @@ def parameter_recovery(
         The design's attributes and their true population tastes.
     replications : int, default 20
     simulation : mapping, optional
-        Keyword arguments of :func:`~hierchoice.data.simulate.simulate_panel` other
+        Keyword arguments of :func:`~hierchoice.simulate.simulate_panel` other
         than ``attributes`` and ``seed`` (``n_persons``, ``n_tasks``,
         ``alternatives``, ``opt_out``, ``constants``, ``correlation``, ...).
     fitter : callable, optional

@@ -46,10 +46,10 @@ import xarray as xr
 
 from .._backend import load_backend
 from ..data.panel import ChoicePanel
-from ..data.simulate import draw_choices
 from ..diagnostics.checks import population_draws
 from ..exceptions import FitError, SpecError, first_few
 from ..model.build import POPULATION_VARS, build_model
+from ..simulate import draw_choices
 from ..spec import Spec, _positive_int, load_spec
 from .distributed import TaskFailure, run_tasks, task_seed, task_seed_sequence
 from .fitters import (
@@ -97,7 +97,7 @@ def simulate_choices(panel: ChoicePanel, person_taste: np.ndarray, rng: np.rando
     The design (attribute values, availability, tasks, persons, covariates) is kept;
     each real task's choice is drawn from
     :math:`P_{ntj} \propto \exp(x_{ntj}\cdot\beta_n)` over the available alternatives
-    (:func:`hierchoice.data.simulate.draw_choices`).
+    (:func:`hierchoice.simulate.draw_choices`).
 
     Parameters
     ----------

@@ -21,7 +21,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..exceptions import SpecError
+from .exceptions import SpecError
+from .model.transforms import TasteMap, latent_to_coefficient
 
 __all__ = ["SimAttribute", "SimulatedPanel", "simulate_panel", "ferry_scenario", "benchmark_scenario",
            "draw_choices"]
@@ -203,10 +204,7 @@ def simulate_panel(
         chol = np.linalg.cholesky(corr)
         e = rng.standard_normal((n_persons, len(random_idx))) @ chol.T
         eta[:, random_idx] += e * sd[random_idx]
-    beta = eta.copy()
-    for k in range(n_k):
-        if term_taste[k] == "lognormal":
-            beta[:, k] = term_sign[k] * np.exp(eta[:, k])
+    beta = latent_to_coefficient(eta, TasteMap.of(term_taste, term_sign))
 
     # --- utilities and choices (task by task, for the lagged choice)
     X = np.stack([columns[t] for t in terms], axis=-1)  # (P, T, J, K)
