@@ -12,9 +12,9 @@ import pandas as pd
 import pytest
 
 import hierchoice as hc
-import hierchoice.report.html as report_module
+import hierchoice.report.markup as report_module
 from hierchoice import SimAttribute, SpecError
-from hierchoice.report.html import REPORT_FILE, convergence_status, write_report
+from hierchoice.report import REPORT_FILE, convergence_status, write_report
 from test_tastes import fake_fit, small_panel
 
 VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}

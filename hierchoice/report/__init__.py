@@ -6,7 +6,8 @@ Owns: :func:`write_report` and :func:`convergence_status`. A thin layer over ``h
 
 from __future__ import annotations
 
-from .html import REPORT_FILE, convergence_status, write_report
+from .html import REPORT_FILE, write_report
+from .status import convergence_status
 
 __all__ = [
     "REPORT_FILE",
