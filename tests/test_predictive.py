@@ -151,14 +151,14 @@ def test_ppc_shares_cover_the_truth_and_flag_a_missing_constant() -> None:
     panel, truth, _ = _deck_panel("dummy", seed=9)
     good = ppc_shares(_fit_with_tastes(panel, _around(truth, 0.05, seed=2, draws=100)), draws=200, seed=1)
     assert len(good) == 3 + 3  # three alternatives, three deck levels
-    spread = (good["upper"] - good["lower"]) / (2 * 1.645)  # the 90 % interval in replicated SDs
+    spread = (good["eti_high"] - good["eti_low"]) / (2 * 1.645)  # the 90 % interval in replicated SDs
     assert np.all(np.abs(good["observed"] - good["replicated_mean"]) < 5 * spread)
     # drop the constants from the posterior: the model now under-predicts option "a" badly
     wrong = truth.copy()
     wrong[:, [panel.attributes.index("asc:a"), panel.attributes.index("asc:b")]] = 0.0
     bad = ppc_shares(_fit_with_tastes(panel, _around(wrong, 0.05, seed=2, draws=100)), draws=200, seed=1)
     row = bad[(bad["statistic"] == "alternative") & (bad["level"] == "a")].iloc[0]
-    assert row["outside"] and row["observed"] > row["upper"] and row["p_value"] == 0.0
+    assert row["outside"] and row["observed"] > row["eti_high"] and row["p_value"] == 0.0
 
 
 # --------------------------------------------------------------------------- holdout split and the fixed-taste spec

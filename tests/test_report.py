@@ -159,7 +159,7 @@ def _sections_after_job(page: str) -> list[str]:
 def test_failing_checks_module_gives_not_checked(fake_folder: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     import hierchoice.diagnostics.folder
 
-    def broken(folder: Any, *, out: Any = None) -> Any:
+    def broken(folder: Any, *, out: Any = None, result: Any = None) -> Any:
         raise RuntimeError("disk on fire")
 
     monkeypatch.setattr(hierchoice.diagnostics.folder, "check_folder", broken)
@@ -205,7 +205,7 @@ def test_passing_verdict_and_stale_diagnostics(fake_folder: Path, monkeypatch: p
     calls = []
     import hierchoice.diagnostics.folder
 
-    def fake_check(folder: Any, *, out: Any = None) -> Any:
+    def fake_check(folder: Any, *, out: Any = None, result: Any = None) -> Any:
         calls.append(folder)
         return {"verdict": "warn", "checks": []}, 0
 

@@ -55,7 +55,8 @@ THRESHOLDS = {
     "lognormal_sd": {"warn_below": LOG_SD_COLLAPSED, "warn_above": LOG_SD_LARGE, "reference": _REF_COMMON},
 }
 
-def check_folder(folder: str | Path, *, out: str | Path | None = None) -> tuple[dict[str, Any], int]:
+def check_folder(folder: str | Path, *, out: str | Path | None = None,
+                 result: Any = None) -> tuple[dict[str, Any], int]:
     """Check a results folder: convergence verdict, predictive summary, LOO, plots and ``diagnostics.json``.
 
     Loads the fit (:func:`hierchoice.archive.load_fit`), grades every convergence
@@ -70,6 +71,8 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None) -> tuple[
         A results folder written by :func:`hierchoice.save_fit`.
     out : path, optional
         Where to write ``diagnostics.json`` and the plots; defaults to ``folder``.
+    result : ChoiceFit, optional
+        The fit in ``folder`` when the caller has already loaded it (it is not read again).
 
     Returns
     -------
@@ -81,7 +84,7 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None) -> tuple[
     """
     folder = Path(folder)
     target = Path(out) if out is not None else folder
-    result = load_fit(folder)
+    result = load_fit(folder) if result is None else result
     report: dict[str, Any] = {"folder": str(folder), "fit": dict(result.info), "notes": []}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

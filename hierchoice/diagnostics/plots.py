@@ -153,7 +153,7 @@ def plot_ppc_shares(table: pd.DataFrame) -> Any:
     y = np.arange(len(labels))[::-1]
     fig = Figure(figsize=(6, 0.8 + 0.35 * len(labels)))
     ax = fig.subplots()
-    ax.hlines(y, table["lower"], table["upper"], color="tab:blue", lw=4, alpha=0.5, label="replicated interval")
+    ax.hlines(y, table["eti_low"], table["eti_high"], color="tab:blue", lw=4, alpha=0.5, label="replicated interval")
     ax.plot(table["replicated_mean"], y, "|", color="tab:blue", ms=12)
     colours = np.where(table["outside"], "tab:red", "black")
     ax.scatter(table["observed"], y, color=colours, zorder=3, label="observed")

@@ -309,7 +309,7 @@ def ppc_shares(result: Any, *, draws: int = 200, prob: float = 0.9, seed: int = 
     DataFrame, one row per statistic
         ``statistic`` (``"alternative"`` or ``"level"``), ``attribute`` (empty for
         alternatives), ``level`` (alternative label or level), ``observed``,
-        ``replicated_mean``, ``lower``, ``upper`` (equal-tailed ``prob`` interval),
+        ``replicated_mean``, ``eti_low``, ``eti_high`` (equal-tailed ``prob`` interval),
         ``p_value`` (share of replications at or above the observed share; Gelman,
         Meng & Stern 1996) and ``outside`` (observed outside the interval).
     """
@@ -335,10 +335,10 @@ def ppc_shares(result: Any, *, draws: int = 200, prob: float = 0.9, seed: int = 
     upper = np.quantile(rep, hi_q, axis=0)
     frame = pd.DataFrame({
         "statistic": [n[0] for n in names], "attribute": [n[1] for n in names], "level": [n[2] for n in names],
-        "observed": observed, "replicated_mean": rep.mean(axis=0), "lower": lower, "upper": upper,
+        "observed": observed, "replicated_mean": rep.mean(axis=0), "eti_low": lower, "eti_high": upper,
         "p_value": (rep >= observed[None, :] - 1e-12).mean(axis=0),
     })
-    frame["outside"] = (frame["observed"] < frame["lower"]) | (frame["observed"] > frame["upper"])
+    frame["outside"] = (frame["observed"] < frame["eti_low"]) | (frame["observed"] > frame["eti_high"])
     return frame
 
 

@@ -93,7 +93,7 @@ def _fit_section(status: dict[str, Any], folder: Path) -> str | None:
             parts.append("<h3>Posterior-predictive checks</h3>" + _kv(pairs))
         if isinstance(shares, list) and shares:
             rows = [[r.get("statistic", ""), r.get("attribute", ""), r.get("level", ""), _pct(r.get("observed")),
-                     f"{_pct(r.get('lower'))} – {_pct(r.get('upper'))}", "yes" if r.get("outside") else ""]
+                     f"{_pct(r.get('eti_low'))} – {_pct(r.get('eti_high'))}", "yes" if r.get("outside") else ""]
                     for r in shares if isinstance(r, dict)]
             parts.append(_table(["statistic", "attribute", "level", "observed share", "replicated interval",
                                  "outside"], rows, numeric=[3, 4]))

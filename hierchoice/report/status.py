@@ -79,7 +79,7 @@ def convergence_status(folder: str | Path, result: ChoiceFit | None = None) -> d
             reasons.append(f"the convergence checks (hierchoice.checks) are not available ({type(err).__name__})")
         else:
             try:
-                report, _code = check_folder(folder)
+                report, _code = check_folder(folder, result=result)
                 source = "hierchoice.diagnostics.folder.check_folder"
             except Exception as err:  # a failing check must not stop the report
                 log.warning("convergence checks failed: %s", err)
