@@ -50,7 +50,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import xarray as xr
-from scipy import special
 
 from .._args import whole_number
 from ..exceptions import FitError, SpecError
@@ -235,6 +234,8 @@ def population_taste_draws(
         or in WTP space willingness to pay, is positive). See the module docstring
         for the formulas.
     """
+    from scipy import special  # loaded on first use: importing hierchoice stays light
+
     qs = [float(q) for q in quantiles]
     for q in qs:
         if not 0 < q < 1:
