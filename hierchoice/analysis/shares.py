@@ -72,12 +72,11 @@ import xarray as xr
 from .._records import Check, log_records, warning_record
 from ..data.panel import _label, read_table
 from ..exceptions import DataError, FitError, SpecError, first_few
-from ..inference.results import ChoiceFit
+from ..inference.results import ChoiceFit, thin_draws
 from ..model.likelihood import choice_probabilities
 from .tastes import (
     DEFAULT_PROB,
     _person_draws,
-    _thin,
     check_prob,
     simulate_population_tastes,
     summarize_draws,
@@ -263,7 +262,7 @@ def person_coefficients(
         draws = _person_draws(result)
     except FitError as err:
         raise FitError(f"{err} For market shares, persons = \"population\" needs no person draws.") from None
-    draws = _thin(draws.to_dataset(name="b"), max_draws)["b"]
+    draws = thin_draws(draws.to_dataset(name="b"), max_draws)["b"]
     return draws.transpose("chain", "draw", "person", "attribute")
 
 

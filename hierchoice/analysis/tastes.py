@@ -53,7 +53,7 @@ import xarray as xr
 
 from .._args import whole_number
 from ..exceptions import FitError, SpecError
-from ..inference.results import ChoiceFit
+from ..inference.results import ChoiceFit, thin_draws
 from ..model.transforms import latent_to_coefficient
 
 __all__ = [
@@ -156,18 +156,6 @@ def summarize_draws(
 
 
 # --------------------------------------------------------------------------- population parameters
-
-
-def _thin(posterior: xr.Dataset, max_draws: int | None) -> xr.Dataset:
-    """Keep at most ``max_draws`` draws in all, evenly spaced within each chain."""
-    if max_draws is None:
-        return posterior
-    n_c, n_d = posterior.sizes["chain"], posterior.sizes["draw"]
-    if n_c * n_d <= max_draws:
-        return posterior
-    per_chain = max(1, max_draws // n_c)
-    keep = np.unique(np.linspace(0, n_d - 1, per_chain).round().astype(int))
-    return posterior.isel(draw=keep)
 
 
 def _parameters(result: ChoiceFit, posterior: xr.Dataset | None = None) -> dict[str, Any]:
@@ -351,13 +339,7 @@ def population_tastes(
 
 
 def _person_draws(result: ChoiceFit) -> xr.DataArray:
-    post = result.posterior
-    if "person_taste" not in post:
-        raise FitError(
-            "This fit kept no person draws (sampling.store_person_draws = false), so individual tastes are "
-            "unavailable. Refit with store_person_draws = true, or use the population-level results."
-        )
-    return post["person_taste"]
+    return result.person_draws("Individual tastes")
 
 
 def person_tastes(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame:
@@ -498,7 +480,7 @@ def simulate_population_tastes(
     """
     n_persons = whole_number(n_persons, "n_persons")
     layout = result.layout
-    post = _thin(result.posterior, max_draws)
+    post = thin_draws(result.posterior, max_draws)
     p = _parameters(result, post)
     rng = np.random.default_rng(seed)
     mu, sd = p["mu"], p["sd"]

@@ -54,6 +54,7 @@ import xarray as xr
 from .._args import whole_number
 from .._records import Check
 from ..exceptions import FitError, SpecError, first_few
+from ..inference.results import thin_draws
 from ..model.build import POPULATION_VARS
 from ..model.likelihood import difference_data, task_loglik_numpy
 from ..model.transforms import latent_to_coefficient
@@ -97,14 +98,6 @@ def task_loo(result: Any) -> Any:
 
         add_log_likelihood(result)
     return _loo(result.idata, "chosen")
-
-
-def _thinned(posterior: xr.Dataset, max_draws: int | None) -> xr.Dataset:
-    n_c, n_d = posterior.sizes["chain"], posterior.sizes["draw"]
-    if max_draws is None or n_c * n_d <= max_draws:
-        return posterior
-    step = math.ceil(n_c * n_d / max_draws)
-    return posterior.isel(draw=slice(None, None, step))
 
 
 def _population_tastes(layout: Any, mean: np.ndarray, sd: np.ndarray | None, chol: np.ndarray | None,
@@ -153,7 +146,7 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
     """
     whole_number(n_sim, "person_log_marginal(n_sim=...)", minimum=2)
     panel, layout = result.panel, result.layout
-    post = _thinned(result.idata.posterior, max_draws)
+    post = thin_draws(result.idata.posterior, max_draws)
     if "taste_mean" not in post:
         raise FitError("person_log_marginal needs the posterior population means ('taste_mean'); this fit has none.")
     n_c, n_d = post.sizes["chain"], post.sizes["draw"]
@@ -213,7 +206,7 @@ def person_loo(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, se
     import arviz as az
 
     est = person_log_marginal(result, n_sim=n_sim, max_draws=max_draws, seed=seed)
-    post = _thinned(result.idata.posterior, max_draws)
+    post = thin_draws(result.idata.posterior, max_draws)
     pop = post[[v for v in POPULATION_VARS if v in post]]
     idata = az.InferenceData(posterior=pop, log_likelihood=xr.Dataset({PERSON_LOGLIK: est["log_marginal"]}))
     loo = _loo(idata, PERSON_LOGLIK)

@@ -44,7 +44,8 @@ import xarray as xr
 from .._args import whole_number
 from .._backend import load_backend
 from ..data.panel import ChoicePanel
-from ..exceptions import DataError, FitError, SpecError, first_few
+from ..exceptions import DataError, SpecError, first_few
+from ..inference.results import thin_draws
 from ..model.likelihood import choice_probabilities, difference_data, task_loglik_numpy
 from ..spec import Spec, load_spec
 
@@ -69,14 +70,6 @@ _BLOCK_CELLS = 4_000_000
 # --------------------------------------------------------------------------- helpers
 
 
-def _need_person_draws(result: Any, what: str) -> None:
-    if "person_taste" not in result.idata.posterior:
-        raise FitError(
-            f"{what} needs the posterior person tastes ('person_taste'), which this fit did not store; refit with "
-            "sampling.store_person_draws = true."
-        )
-
-
 def taste_draws(result: Any, panel: ChoicePanel | None = None, *, max_draws: int | None = None) -> np.ndarray:
     """Posterior draws of each person's tastes, shape (n_draws, n_persons, n_attributes).
 
@@ -84,9 +77,8 @@ def taste_draws(result: Any, panel: ChoicePanel | None = None, *, max_draws: int
     selected by label; chains are pooled. With ``max_draws``, evenly spaced draws
     are kept.
     """
-    _need_person_draws(result, "taste_draws")
     panel = result.panel if panel is None else panel
-    da = result.idata.posterior["person_taste"]
+    da = result.person_draws("taste_draws")
     known = set(da["person"].values.tolist())
     missing = [p for p in panel.persons if p not in known]
     if missing:
@@ -95,12 +87,9 @@ def taste_draws(result: Any, panel: ChoicePanel | None = None, *, max_draws: int
             "other persons); predict only persons the fit has seen."
         )
     da = da.sel(person=list(panel.persons), attribute=list(panel.attributes))
+    da = thin_draws(da, max_draws)
     values = da.transpose("chain", "draw", "person", "attribute").values
-    values = values.reshape((-1,) + values.shape[2:])
-    if max_draws is not None and values.shape[0] > max_draws:
-        keep = np.unique(np.linspace(0, values.shape[0] - 1, max_draws).round().astype(int))
-        values = values[keep]
-    return values
+    return values.reshape((-1,) + values.shape[2:])
 
 
 def _block(panel: ChoicePanel) -> int:

@@ -35,11 +35,11 @@ import xarray as xr
 
 from .._io import atomic_dir
 from ..data.panel import ChoicePanel, ValidationSummary
-from ..exceptions import ArchiveError, SpecError
+from ..exceptions import ArchiveError, FitError, SpecError
 from ..model.build import ModelLayout, model_layout
 from ..spec import Spec
 
-__all__ = ["ChoiceFit", "population_summary", "save_fit", "load_fit", "POSTERIOR_FILE"]
+__all__ = ["ChoiceFit", "population_summary", "thin_draws", "save_fit", "load_fit", "POSTERIOR_FILE"]
 
 POSTERIOR_FILE = "posterior.nc"
 
@@ -75,6 +75,15 @@ class ChoiceFit:
     @property
     def has_person_draws(self) -> bool:
         return "person_taste" in self.idata.posterior
+
+    def person_draws(self, what: str) -> xr.DataArray:
+        """The posterior person tastes ``person_taste``; a :class:`FitError` saying what needs them when absent."""
+        if not self.has_person_draws:
+            raise FitError(
+                f"{what} needs the posterior person tastes ('person_taste'), which this fit did not store; refit "
+                "with sampling.store_person_draws = true, or use the population-level results."
+            )
+        return self.idata.posterior["person_taste"]
 
     def population(self, prob: float = 0.9) -> pd.DataFrame:
         """Summary of population parameters with equal-tailed intervals (see :func:`population_summary`)."""
@@ -160,6 +169,22 @@ def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
     table = pd.DataFrame(rows).set_index("parameter")
     table.attrs["prob"] = prob
     return table
+
+
+def thin_draws(posterior: Any, max_draws: int | None) -> Any:
+    """Keep at most ``max_draws`` draws in all, evenly spaced within each chain (every chain kept).
+
+    The one thinning rule of the package: summaries, shares, LOO and predictive checks that cap their cost with
+    ``max_draws`` all use it, so they see the same draws.
+    """
+    if max_draws is None:
+        return posterior
+    n_c, n_d = posterior.sizes["chain"], posterior.sizes["draw"]
+    if n_c * n_d <= max_draws:
+        return posterior
+    per_chain = max(1, max_draws // n_c)
+    keep = np.unique(np.linspace(0, n_d - 1, per_chain).round().astype(int))
+    return posterior.isel(draw=keep)
 
 
 def _attrs_for(result: ChoiceFit) -> dict[str, str]:
