@@ -252,7 +252,15 @@ def test_check_folder_healthy_and_broken(healthy: ChoiceFit, tmp_path: Path,
     _pngs_ok(good_dir, list(report["plots"].values()))
     assert not [p.name for p in good_dir.iterdir() if p.name.startswith(".") and p.name != MARKER]  # no temporary files left
     text = format_verdict(report)
-    assert "no convergence check failed" in text and "hit rate" in text and "PSIS-LOO (person level)" in text
+    assert "hit rate" in text and "PSIS-LOO (person level)" in text
+    n_warn = sum(r["verdict"] == "warn" for r in report["checks"])
+    last = text.splitlines()[-1]
+    assert last == ("every convergence check passed" if n_warn == 0 else
+                    f"no convergence check failed, but {n_warn} warning{'s' if n_warn > 1 else ''}: read "
+                    f"{'them' if n_warn > 1 else 'it'} (what to do, above) before using the results")
+    assert "not graded" in text  # the in-sample calibration error is labelled as such
+    assert all(r["shown"] == checks.format_check_value(r["check"], r["value"], r["threshold"])
+               for r in report["checks"])
 
     bad_dir = hc.save_fit(_broken(healthy), tmp_path / "bad")
     out = tmp_path / "elsewhere"
@@ -269,3 +277,72 @@ def test_check_folder_healthy_and_broken(healthy: ChoiceFit, tmp_path: Path,
 def test_check_folder_on_a_missing_folder(tmp_path: Path) -> None:
     with pytest.raises(hc.ArchiveError, match="posterior.nc"):
         check_folder(tmp_path / "nothing")
+
+
+# --------------------------------------------------------------------------- how verdicts and values read
+
+
+def _report(*verdicts: str) -> dict:
+    rows = [{"check": "rhat", "subject": f"v{i}", "value": 1.0 if v == "pass" else 1.02, "threshold": RHAT_MAX,
+             "rule": f"value < {RHAT_MAX}", "verdict": v, "advice": "" if v == "pass" else "run longer"}
+            for i, v in enumerate(verdicts)]
+    return {"verdict": overall_verdict([checks.Check("x", "", 0, 0, "", v) for v in verdicts]), "checks": rows,
+            "exit_code": int("fail" in verdicts)}
+
+
+def test_a_warn_verdict_never_reads_as_a_pass() -> None:
+    # the issue: a WARN run ended with "no convergence check failed", which reads as a pass
+    assert format_verdict(_report("pass", "pass")).splitlines()[-1] == "every convergence check passed"
+    warned = format_verdict(_report("pass", "warn", "warn"))
+    assert warned.splitlines()[0].startswith("convergence verdict: WARN")
+    assert warned.splitlines()[-1] == ("no convergence check failed, but 2 warnings: read them (what to do, "
+                                       "above) before using the results")
+    assert "passed" not in warned
+    failed = format_verdict(_report("warn", "fail")).splitlines()[-1]
+    assert failed.startswith("1 convergence check FAILED")
+
+
+@given(st.floats(min_value=0.95, max_value=1.10, allow_nan=False),
+       st.sampled_from([("rhat", RHAT_MAX), ("person_rhat", RHAT_MAX), ("ebfmi", EBFMI_MIN + 0.7),
+                        ("ess_bulk", 400.0), ("lognormal_sd", 1.0)]))
+def test_a_shown_value_is_on_the_same_side_of_its_threshold(offset: float, case: tuple[str, float]) -> None:
+    check, threshold = case
+    value = threshold * offset
+    shown = float(checks.format_check_value(check, value, threshold).replace(",", ""))
+    assert np.sign(shown - threshold) == np.sign(value - threshold)
+
+
+def test_rhat_is_shown_with_three_decimals_and_shares_are_never_rounded_to_zero() -> None:
+    # the issue: R-hat 1.012 printed as "1.01" next to the rule "< 1.01"; "0.0 %" for 1 of 1,760 person tastes
+    assert checks.format_check_value("rhat", 1.012, RHAT_MAX) == "1.012"
+    assert checks.format_check_value("rhat", 1.0099, RHAT_MAX) == "1.0099"
+    assert checks.format_check_value("ess_bulk", 1301.4, ESS_MIN) == "1,301"
+    assert checks.format_check_value("rhat", None) == "n/a"
+    assert checks.count_share(1, 1760) == "1 of 1,760 (0.057 %)"
+    assert checks.count_share(0, 1760) == "0 of 1,760 (0 %)"
+    assert checks.count_share(44, 1760) == "44 of 1,760 (2.5 %)"
+
+
+def test_person_rhat_advice_counts_the_tastes_over_the_line(healthy: ChoiceFit) -> None:
+    post = healthy.idata.posterior
+    one = xr.zeros_like(post["person_taste"])
+    first = (post["person"] == post["person"][0]) & (post["attribute"] == post["attribute"][0])
+    shift = one + 2.0 * float(post["person_taste"].std()) * (post["chain"] == 1) * first
+    idata = healthy.idata.copy()
+    idata.posterior["person_taste"] = post["person_taste"] + shift
+    rec = _by(checks.person_checks(idata), "person_rhat")
+    n = post.sizes["person"] * post.sizes["attribute"]
+    n_over = int((az.rhat(idata.posterior[["person_taste"]], method="rank")["person_taste"] >= RHAT_MAX).sum())
+    assert 1 <= n_over < n
+    assert rec.verdict in ("warn", "fail") and f"{checks.count_share(n_over, n)} person tastes" in rec.advice
+
+
+def test_trace_plot_says_how_many_parameters_it_leaves_out(healthy: ChoiceFit) -> None:
+    from hierchoice.diagnostics.plots import plot_trace
+
+    n_all = int(population_draws(healthy.posterior).std(("chain", "draw")).pipe(lambda s: (s > 0).sum()))
+    assert n_all > 3
+    fig = plot_trace(healthy.idata, max_parameters=3, table=parameter_diagnostics(healthy.idata))
+    assert fig._suptitle is not None and fig._suptitle.get_text().startswith(f"first 3 of {n_all} population")
+    full = plot_trace(healthy.idata, max_parameters=n_all)
+    assert full._suptitle is None

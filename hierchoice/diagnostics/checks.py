@@ -80,6 +80,8 @@ __all__ = [
     "convergence_checks",
     "checks_frame",
     "overall_verdict",
+    "format_check_value",
+    "count_share",
 ]
 
 #: R-hat (rank-normalised split) below this passes (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021).
@@ -127,6 +129,54 @@ def _grade_lower(value: float, ok: float, bad: float) -> str:
     if not np.isfinite(value):
         return "warn"
     return "pass" if value >= ok else "warn" if value >= bad else "fail"
+
+
+# --------------------------------------------------------------------------- numbers as text
+
+#: Decimals a check's value is first shown with (R-hat to three: 1.012 must not read as 1.01).
+_DECIMALS = {"rhat": 3, "person_rhat": 3, "ebfmi": 2, "lognormal_sd": 3}
+_WHOLE = ("ess_bulk", "ess_tail", "person_ess_bulk", "divergences")
+
+
+def format_check_value(check: str, value: Any, threshold: Any = None) -> str:
+    """A check's value as text that never reads as being on the other side of its threshold.
+
+    R-hat gets three decimals, ESS and divergence counts none, others about four significant digits; when
+    rounding would put the shown number on the threshold or across it (1.0099 shown as "1.010" next to the
+    rule "< 1.01"), decimals are added until it does not. ``"n/a"`` for a missing value.
+    """
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return "n/a"
+    if not math.isfinite(v):
+        return "n/a"
+    try:
+        t = float(threshold)
+    except (TypeError, ValueError):
+        t = math.nan
+    if check in _WHOLE:
+        first = 0
+    elif check in _DECIMALS:
+        first = _DECIMALS[check]
+    else:
+        first = max(0, 3 - int(math.floor(math.log10(abs(v))))) if v != 0 else 0
+    text = ""
+    for decimals in range(first, first + 8):
+        text = f"{v:,.{decimals}f}"
+        shown = float(text.replace(",", ""))
+        if not math.isfinite(t) or np.sign(shown - t) == np.sign(v - t):
+            break
+    return text
+
+
+def count_share(count: int, total: int) -> str:
+    """``"3 of 2,100 (0.14 %)"``: a count with its share, where a non-zero share is never shown as 0 %."""
+    if total <= 0:
+        return f"{count:,} of {total:,}"
+    pct = 100.0 * count / total
+    shown = "0" if count == 0 else f"{pct:.2g}" if pct < 1 else f"{pct:.1f}"
+    return f"{count:,} of {total:,} ({shown} %)"
 
 
 # --------------------------------------------------------------------------- population parameters
@@ -216,7 +266,8 @@ def parameter_diagnostics(idata: Any, var_names: Sequence[str] = POPULATION_VARS
 
 
 def _advice_rhat(variable: str, label: str, value: float) -> str:
-    base = (f"The chains disagree about {label} (R-hat {value:.3f}). Run longer (double tune and draws) and "
+    base = (f"The chains disagree about {label} (R-hat {format_check_value('rhat', value, RHAT_MAX)}). Run longer "
+            "(double tune and draws) and "
             "look at the rank and trace plots: one chain stuck away from the others, or two separate modes, "
             "is a model problem rather than a matter of length.")
     if variable == "taste_sd":
@@ -262,7 +313,7 @@ def population_checks(idata: Any, var_names: Sequence[str] = POPULATION_VARS,
             n_over = int((r >= RHAT_MAX).sum())
             out.append(Check("rhat", variable, v, RHAT_MAX, f"value < {RHAT_MAX}", verdict,
                              "" if verdict == "pass" else _advice_rhat(variable, label, v), _REF_RHAT,
-                             f"worst {label}; {n_over} of {r.notna().sum()} at or over {RHAT_MAX}"))
+                             f"worst {label}; {count_share(n_over, int(r.notna().sum()))} at or over {RHAT_MAX}"))
         for kind in ("ess_bulk", "ess_tail"):
             e = rows[kind]
             if not e.notna().any():
@@ -272,7 +323,8 @@ def population_checks(idata: Any, var_names: Sequence[str] = POPULATION_VARS,
             verdict = _grade_lower(v, ESS_MIN, ESS_FAIL)
             out.append(Check(kind, variable, v, ESS_MIN, f"value >= {ESS_MIN}", verdict,
                              "" if verdict == "pass" else _advice_ess(kind, variable, label, v), _REF_RHAT,
-                             f"smallest {label}; {int((e < ESS_MIN).sum())} of {e.notna().sum()} below {ESS_MIN}"))
+                             f"smallest {label}; {count_share(int((e < ESS_MIN).sum()), int(e.notna().sum()))} "
+                             f"below {ESS_MIN}"))
     return out
 
 
@@ -395,29 +447,29 @@ def person_checks(idata: Any) -> list[Check]:
     if r.notna().any():
         i = int(r.idxmax())
         v = float(r.max())
-        share = float((r >= RHAT_MAX).sum() / r.notna().sum())
+        over = count_share(int((r >= RHAT_MAX).sum()), int(r.notna().sum()))
         verdict = _grade_upper(v, RHAT_MAX, RHAT_FAIL)
         out.append(Check(
             "person_rhat", "person_taste", v, RHAT_MAX, f"worst value < {RHAT_MAX}", verdict,
             "" if verdict == "pass" else
-            (f"The chains disagree about some persons' tastes (worst {table.at[i, 'label']}, R-hat {v:.3f}; "
-             f"{share:.1%} of person tastes at or over {RHAT_MAX}). Run longer; if the population parameters "
-             "also fail, fix those first — person tastes follow them."),
-            _REF_RHAT, f"worst {table.at[i, 'label']}; share at or over {RHAT_MAX}: {share:.4f}"))
+            (f"The chains disagree about some persons' tastes (worst {table.at[i, 'label']}, R-hat "
+             f"{format_check_value('rhat', v, RHAT_MAX)}; {over} person tastes at or over {RHAT_MAX}). Run "
+             "longer; if the population parameters also fail, fix those first — person tastes follow them."),
+            _REF_RHAT, f"worst {table.at[i, 'label']}; at or over {RHAT_MAX}: {over}"))
     e = table["ess_bulk"]
     if e.notna().any():
         i = int(e.idxmin())
         v = float(e.min())
-        share = float((e < ESS_MIN).sum() / e.notna().sum())
+        below = count_share(int((e < ESS_MIN).sum()), int(e.notna().sum()))
         verdict = _grade_lower(v, ESS_MIN, ESS_FAIL)
         verdict = "warn" if verdict == "fail" else verdict
         out.append(Check(
             "person_ess_bulk", "person_taste", v, ESS_MIN, f"smallest value >= {ESS_MIN}", verdict,
             "" if verdict == "pass" else
             (f"Some person tastes have few effective draws (smallest {table.at[i, 'label']}, ESS {v:.0f}; "
-             f"{share:.1%} below {ESS_MIN}). Person-level summaries (individual WTP, hit rates) are noisier; "
+             f"{below} below {ESS_MIN}). Person-level summaries (individual WTP, hit rates) are noisier; "
              "raise draws if you report persons one by one."),
-            _REF_RHAT, f"smallest {table.at[i, 'label']}; share below {ESS_MIN}: {share:.4f}"))
+            _REF_RHAT, f"smallest {table.at[i, 'label']}; below {ESS_MIN}: {below}"))
     return out
 
 

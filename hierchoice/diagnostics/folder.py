@@ -32,6 +32,7 @@ from .checks import (
     RHAT_FAIL,
     RHAT_MAX,
     convergence_checks,
+    format_check_value,
     parameter_diagnostics,
 )
 from .loo import pareto_k_checks, person_loo, task_loo
@@ -43,7 +44,7 @@ from .predictive import (
     reliability,
 )
 
-__all__ = ["check_folder", "format_verdict", "THRESHOLDS"]
+__all__ = ["check_folder", "format_verdict", "closing_line", "THRESHOLDS"]
 
 THRESHOLDS = {
     "rhat": {"pass_below": RHAT_MAX, "fail_at": RHAT_FAIL, "reference": _REF_RHAT + "; 1.05: common practice"},
@@ -91,7 +92,8 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
         table = parameter_diagnostics(result.idata)
         checks = convergence_checks(result, table=table)
         report["verdict"] = overall_verdict(checks)
-        report["checks"] = [c.to_dict() for c in checks]
+        report["checks"] = [c.to_dict() | {"shown": format_check_value(c.check, c.value, c.threshold)}
+                            for c in checks]
         report["parameters"] = table
         report["thresholds"] = THRESHOLDS
 
@@ -105,6 +107,7 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
             report["predictive"] = {
                 "hit_rate": hr.to_dict(),
                 "calibration_error": float((rel["n"] * (rel["observed"] - rel["mean_predicted"]).abs()).sum() / n),
+                "calibration_note": _IN_SAMPLE_NOTE,
                 "reliability": rel,
                 "shares": shares,
                 "shares_outside_interval": int(shares["outside"].sum()),
@@ -122,6 +125,9 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
         else:
             report["notes"].append("the fit stores no person draws: hit rate, PPC and LOO were skipped")
         plots = write_diagnostic_plots(result, target, reliability_table=rel, shares_table=shares, table=table)
+        holdout = target / "holdout.json"
+        if holdout.is_file():
+            report["notes"].append("held-out validation (hierchoice holdout) is in holdout.json")
         report["plots"] = {name: path.name for name, path in plots.items()}
     code = 1 if any(c.verdict == "fail" for c in checks) else 0
     report["exit_code"] = code
@@ -142,6 +148,26 @@ def _loo_dict(loo: Any) -> dict[str, Any]:
 
 _MARK = {"pass": "PASS", "warn": "WARN", "fail": "FAIL"}
 
+#: Why the in-sample reliability table is shown but never graded (docs/diagnostics.md, "Calibration").
+_IN_SAMPLE_NOTE = ("in-sample: each person's tastes were fitted to these choices, so observed shares come out more "
+                   "extreme than predicted even for a correct model; not graded. The graded test is on held-out "
+                   "tasks: hierchoice holdout.")
+
+
+def closing_line(report: dict[str, Any]) -> str:
+    """The last line of :func:`format_verdict`: failed, passed, or passed with warnings to read (never a pass
+    when a check warned)."""
+    checks = report.get("checks", [])
+    failed = sum(c.get("verdict") == "fail" for c in checks)
+    warned = sum(c.get("verdict") == "warn" for c in checks)
+    if failed or report.get("exit_code"):
+        return (f"{failed} convergence check{'s' if failed != 1 else ''} FAILED: do not read the results until "
+                "they pass (see what to do, above)")
+    if warned:
+        return (f"no convergence check failed, but {warned} warning{'s' if warned != 1 else ''}: read "
+                f"{'them' if warned != 1 else 'it'} (what to do, above) before using the results")
+    return "every convergence check passed"
+
 
 def format_verdict(report: dict[str, Any]) -> str:
     """A plain-text account of a :func:`check_folder` report, for printing."""
@@ -151,7 +177,7 @@ def format_verdict(report: dict[str, Any]) -> str:
     width = max((len(f"{c['check']} {c['subject']}") for c in checks), default=10)
     for c in checks:
         value = c["value"]
-        shown = "n/a" if value is None else f"{value:.4g}"
+        shown = c.get("shown") or format_check_value(c["check"], value, c.get("threshold"))
         name = f"{c['check']} {c['subject']}"
         lines.append(f"  {_MARK[c['verdict']]}  {name:<{width}}  {shown:>9}   ({c['rule']})")
     todo = [c for c in checks if c["verdict"] != "pass" and c.get("advice")]
@@ -163,7 +189,8 @@ def format_verdict(report: dict[str, Any]) -> str:
     if pred:
         hr = pred["hit_rate"]
         lines += ["", f"in-sample hit rate {hr['hit_rate']:.3f} (chance {hr['chance_rate']:.3f}, "
-                      f"{int(hr['n_tasks'])} tasks); calibration error {pred['calibration_error']:.3f}; "
+                      f"{int(hr['n_tasks'])} tasks); in-sample calibration error {pred['calibration_error']:.3f} "
+                      "(not graded: see reliability.png); "
                       f"{pred['shares_outside_interval']} of {len(pred['shares'])} predicted shares outside "
                       "their 90% interval"]
     loo = report.get("loo")
@@ -179,8 +206,6 @@ def format_verdict(report: dict[str, Any]) -> str:
         lines.append(f"note: {note}")
     if report.get("plots"):
         lines += ["", "plots: " + ", ".join(report["plots"].values())]
-    code = report.get("exit_code")
-    if code is not None:
-        lines += ["", "no convergence check failed" if code == 0 else
-                  "some convergence checks FAILED: do not read the results until they pass"]
+    if report.get("exit_code") is not None:
+        lines += ["", closing_line(report)]
     return "\n".join(lines)
