@@ -54,6 +54,28 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return code
 
 
+def _cmd_holdout(args: argparse.Namespace) -> int:
+    """Refit without each person's last (or random) tasks; score and calibrate them; write into a results folder."""
+    from ._io import claim_folder
+    from .data.panel import load_panel
+    from .diagnostics.holdout import format_holdout, holdout_folder
+    from .spec import Spec
+
+    inputs = (args.data, args.spec)
+    claim_folder(args.out, "results", inputs=inputs)  # refuse before the fits, not after
+    spec = Spec.from_toml(args.spec)
+    panel = load_panel(args.data, spec)
+    print(f"holding out {args.tasks} task(s) per person ({args.method}); fitting the mixed"
+          f"{'' if args.no_fixed else ' and the fixed-taste'} model on the rest...", flush=True)
+    summary = holdout_folder(panel, args.out, spec=spec, tasks=args.tasks, method=args.method, seed=args.split_seed,
+                             compare_fixed=not args.no_fixed, inputs=inputs, draws=args.draws, tune=args.tune,
+                             chains=args.chains, fit_seed=args.seed, progressbar=not args.quiet)
+    print(format_holdout(summary))
+    print(f"\nwrote holdout.json, holdout_tasks.csv and holdout_reliability.png into {args.out}/ "
+          f"(hierchoice report {args.out} shows them)")
+    return 0
+
+
 def _cmd_report(args: argparse.Namespace) -> int:
     from .report.html import write_report
 
@@ -157,6 +179,24 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("check", help="convergence verdict, predictive checks and LOO of a results folder")
     p.add_argument("folder", help="a results folder written by 'hierchoice fit'")
     p.set_defaults(func=_cmd_check)
+
+    p = sub.add_parser("holdout", help="refit without each person's last K tasks and score the held-out tasks "
+                                       "(hit rate, log score, calibration)")
+    p.add_argument("data", help="long (or wide) CSV or Parquet file")
+    p.add_argument("--spec", required=True, help="the TOML spec")
+    p.add_argument("--out", required=True, help="results folder to add the holdout files to (e.g. the one "
+                                                 "'hierchoice fit' wrote), or a new folder")
+    p.add_argument("--tasks", type=int, default=2, help="tasks held out per person (default 2)")
+    p.add_argument("--method", choices=["last", "random"], default="last",
+                   help="hold out each person's last tasks (default) or random ones")
+    p.add_argument("--split-seed", type=int, default=0, help="seed of --method random (default 0)")
+    p.add_argument("--no-fixed", action="store_true", help="skip the fixed-taste comparison fit")
+    p.add_argument("--draws", type=int, help="draws per chain (overrides [sampling])")
+    p.add_argument("--tune", type=int, help="tuning steps per chain")
+    p.add_argument("--chains", type=int, help="number of chains")
+    p.add_argument("--seed", type=int, help="random seed of the fits")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=_cmd_holdout)
 
     p = sub.add_parser("report", help="write the self-contained HTML report (and CSV tables) of a results folder")
     p.add_argument("folder", help="a results folder written by 'hierchoice fit'")

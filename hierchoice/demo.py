@@ -15,7 +15,8 @@ __all__ = ["write_demo_data", "run_demo"]
 def write_demo_data(out: Path, *, persons: int = 300, seed: int = 7) -> tuple[Path, Path]:
     """Write the demo survey (``harbourline.csv``) and its spec (``harbourline.toml``) into ``out``."""
     out = make_folder(out, "demo")
-    sim = ferry_scenario(n_persons=persons, seed=seed)
+    sim = ferry_scenario(n_persons=persons, seed=seed, correlated=DEMO_CORRELATED)
+    sim.spec["sampling"] = dict(DEMO_SAMPLING)
     data_path = write_with(out / "harbourline.csv", lambda tmp: sim.data.to_csv(tmp, index=False))
     header = (
         "# Harbourline commuter-ferry survey (invented demo data made by hierchoice.simulate).\n"
@@ -25,6 +26,13 @@ def write_demo_data(out: Path, *, persons: int = 300, seed: int = 7) -> tuple[Pa
     Spec.from_toml(spec_path)  # what we wrote must read back
     return data_path, spec_path
 
+
+#: The demo's tastes are independent across people: with 300 respondents the correlations mix so slowly that
+#: 2 chains x 1000 draws ended with R-hat 1.014-1.035 and bulk ESS 138-191 for a correlation (seeds 1, 2), a WARN
+#: on the first run a user sees. Independent tastes with these settings pass every check (docs/demo.md).
+DEMO_CORRELATED = False
+#: Sampling settings written into harbourline.toml (measured in docs/demo.md).
+DEMO_SAMPLING = {"chains": 2, "draws": 2000, "tune": 1000}
 
 DEMO_MARKET = """option,fare,crossing_time,departures_per_hour,deck
 ferry_a,3.5,20,4,covered
@@ -51,14 +59,14 @@ def run_demo(out: Path, *, persons: int = 300, quick: bool = False, seed: int = 
     print(f"1/4 validated {data_path}\n{panel.summary}\n", flush=True)
     draws = dict(draws=60, tune=60) if quick else {}
     print("2/4 fitting the hierarchical logit with NUTS (draws and chains from the spec)...", flush=True)
-    result = fit(panel, spec, progressbar=False, **draws)
+    result = fit(panel, spec, progressbar=True, **draws)
     results = save_fit(result, out / "results")
     print(f"    {result!r} in {result.info['wall_seconds']:.0f} s -> {results}/\n", flush=True)
     print("3/4 checking convergence and predictions...", flush=True)
     report, code = check_folder(results)
     print(format_verdict(report) + "\n", flush=True)
     print("4/4 writing the report...", flush=True)
-    path = write_report(results, market=market_path)
+    path = write_report(results, market=market_path, title="Harbourline commuter-ferry survey (demo)")
     print(f"\nreport: {path}")
     if quick:
         print("(--quick: a smoke run with very few draws; do not read its numbers)")

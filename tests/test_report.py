@@ -138,6 +138,38 @@ def test_report_writes_the_csv_tables(hostile: dict[str, Any]) -> None:
     assert len(persons) == 60 * 2
 
 
+def test_report_job_title_files_and_values(hostile: dict[str, Any]) -> None:
+    import datetime as dt
+    import re
+
+    page, folder = hostile["page"], hostile["folder"]
+    # "fitted" holds the fit's time (written at fit time), not an empty cell
+    fitted = re.search(r"<th>fitted</th><td>([^<]*)</td>", page)
+    assert fitted and re.fullmatch(r"\d{4}-\d\d-\d\d \d\d:\d\d UTC", fitted.group(1)), fitted
+    made = dt.datetime.strptime(fitted.group(1), "%Y-%m-%d %H:%M UTC").replace(tzinfo=dt.timezone.utc)
+    assert abs((dt.datetime.now(dt.timezone.utc) - made).total_seconds()) < 3 * 3600
+    # the folder is called "results": the title names what holds it, not "results: results"
+    assert folder.name == "results"
+    assert f"<title>Choice model results: {folder.parent.name}</title>" in page
+    # the Files section lists every file the folder holds (plots, diagnostics, the fit itself)
+    files = page[page.index("<section id='files'>"):]
+    listed = set(re.findall(r"<li><code>([^<]+)</code>", files))
+    held = {p.name for p in folder.iterdir() if not p.name.startswith(".")}
+    assert listed == held and {"posterior.nc", "diagnostics.json", "rank.png", "report.html"} <= listed
+    # an R-hat is shown as the checks format it (three decimals), never rounded onto its threshold
+    status = convergence_status(folder)
+    rhat = next(c for c in status["checks"] if c["check"] == "rhat")
+    assert f"<td class='num'>{rhat['shown']}</td>" in page and len(rhat["shown"].split(".")[1]) >= 3
+
+
+def test_old_diagnostics_without_shown_values_are_formatted(fake_folder: Path) -> None:
+    report = {"verdict": "fail", "checks": [{"check": "rhat", "subject": "taste_sd", "value": 1.012,
+                                             "threshold": 1.01, "rule": "value < 1.01", "verdict": "warn"}]}
+    (fake_folder / "diagnostics.json").write_text(json.dumps(report))
+    page = write_report(fake_folder).read_text(encoding="utf-8")
+    assert "1.012" in page and "= 1.01 (" not in page
+
+
 # --------------------------------------------------------------------------- convergence unknown or failed (fake fits)
 
 

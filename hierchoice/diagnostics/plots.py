@@ -49,8 +49,18 @@ def _population_dataset(idata: Any, max_parameters: int, table: pd.DataFrame | N
     if table is not None:
         rhat = table["rhat"].reindex(keep).fillna(-np.inf)
         keep = list(rhat.sort_values(ascending=False, kind="stable").index)
-    return xr.Dataset({p: da.sel(parameter=p, drop=True).drop_vars("variable", errors="ignore")
-                       for p in keep[:max_parameters]})
+    ds = xr.Dataset({p: da.sel(parameter=p, drop=True).drop_vars("variable", errors="ignore")
+                     for p in keep[:max_parameters]})
+    ds.attrs["n_parameters"] = len(keep)
+    return ds
+
+
+def _shown_note(fig: Any, ds: xr.Dataset, order: str) -> None:
+    """Title the figure "first K of N parameters shown" when some parameters did not fit in it."""
+    n_all, n = int(ds.attrs.get("n_parameters", len(ds.data_vars))), len(ds.data_vars)
+    if n < n_all:
+        fig.suptitle(f"first {n} of {n_all} population parameters shown ({order}); "
+                     "diagnostics.json grades all of them", fontsize=10)
 
 
 def plot_rank(idata: Any, *, max_parameters: int = 24) -> Any:
@@ -63,6 +73,7 @@ def plot_rank(idata: Any, *, max_parameters: int = 24) -> Any:
 
     ds = _population_dataset(idata, max_parameters)
     fig = _figure_of(az.plot_rank(ds, kind="bars", show=False))
+    _shown_note(fig, ds, "model order")
     fig.tight_layout()
     return fig
 
@@ -71,13 +82,15 @@ def plot_trace(idata: Any, *, max_parameters: int = 12, table: pd.DataFrame | No
     """Trace and marginal density of the population parameters (:func:`arviz.plot_trace`).
 
     With a :func:`~hierchoice.checks.parameter_diagnostics` ``table``, the
-    ``max_parameters`` with the highest R-hat are shown.
+    ``max_parameters`` with the highest R-hat are shown; when parameters are left out the figure's title says
+    "first K of N population parameters shown".
     """
     import arviz as az
 
     ds = _population_dataset(idata, max_parameters, table)
     n = len(ds.data_vars)
     fig = _figure_of(az.plot_trace(ds, compact=False, show=False, figsize=(12, 1.0 + 2.2 * n)))
+    _shown_note(fig, ds, "highest R-hat first" if table is not None else "model order")
     fig.tight_layout()
     return fig
 
@@ -123,24 +136,38 @@ def plot_mean_sd_pair(idata: Any, attribute: str | None = None) -> Any:
     return _figure_of(axes)
 
 
-def plot_reliability(table: pd.DataFrame) -> Any:
+def plot_reliability(table: pd.DataFrame, *, in_sample: bool = True) -> Any:
     """Reliability diagram from :func:`hierchoice.predictive.reliability`: observed against predicted.
 
-    Points on the diagonal are calibrated; the bars are ±2 binomial standard errors
-    around the prediction, so a point outside them is more than noise.
+    Points on the diagonal are calibrated. The grey bars are the bands of
+    :func:`hierchoice.diagnostics.calibration.calibration_bands` (Bonferroni over the bins: a calibrated model
+    puts any point outside them in at most 1 % of tables); points outside them are drawn in red. With
+    ``in_sample`` (the fit's own tasks) the figure says that the points are expected to lie off the diagonal
+    (steeper than it) even for a correct model, and nothing is marked: only held-out tasks are a fair test.
     """
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(5, 5))
+    from .calibration import calibration_bands
+
+    bands = calibration_bands(table)
+    fig = Figure(figsize=(5, 5.6 if in_sample else 5))
     ax = fig.subplots()
     ax.plot([0, 1], [0, 1], color="grey", lw=1, ls="--", label="calibrated")
-    ax.errorbar(table["mean_predicted"], table["mean_predicted"], yerr=2 * table["se"], fmt="none",
-                ecolor="lightgrey", elinewidth=6, label="±2 SE if calibrated")
-    sizes = 20 + 200 * table["n"] / max(float(table["n"].max()), 1.0)
-    ax.scatter(table["mean_predicted"], table["observed"], s=sizes, zorder=3, label="observed share")
+    p = bands["mean_predicted"]
+    ax.errorbar(p, p, yerr=[p - bands["band_low"], bands["band_high"] - p], fmt="none", ecolor="lightgrey",
+                elinewidth=6, label=f"±{bands.attrs['z_band']:.2f} SE if calibrated (1 % false alarms)")
+    sizes = 20 + 200 * bands["n"] / max(float(bands["n"].max()), 1.0)
+    colours = np.where(bands["outside"] & (not in_sample), "tab:red", "tab:blue")
+    ax.scatter(p, bands["observed"], s=sizes, c=colours, zorder=3, label="observed share")
+    what = "in-sample (the fit's own tasks)" if in_sample else "held-out tasks"
     ax.set(xlim=(0, 1), ylim=(0, 1), xlabel="posterior-mean predicted probability",
-           ylabel="observed choice frequency", title="Reliability")
+           ylabel="observed choice frequency", title=f"Reliability: {what}")
     ax.legend(loc="upper left", fontsize="small")
+    if in_sample:
+        fig.text(0.02, 0.01, "Not a test of calibration: each person's tastes were fitted to these choices, so\n"
+                 "points lie off the diagonal (steeper) even for a correct model. Use hierchoice holdout.",
+                 fontsize=7.5, color="#444")
+        fig.subplots_adjust(bottom=0.18)
     return fig
 
 

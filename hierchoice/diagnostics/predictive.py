@@ -197,8 +197,10 @@ def reliability(result: Any, *, bins: int = 10, panel: ChoicePanel | None = None
     -------
     DataFrame, one row per non-empty bin
         ``bin_lower``, ``bin_upper``, ``n``, ``mean_predicted``, ``observed`` (share
-        chosen) and ``se`` (binomial standard error of the observed share if the
-        predictions were right, :math:`\\sqrt{\\bar p(1-\\bar p)/n}`).
+        chosen) and ``se`` (standard error of the observed share if the predictions
+        were right and the outcomes independent, :math:`\\sqrt{\\sum_i p_i(1-p_i)}/n`).
+        In-sample (the fit's own tasks) the table is not a fair test: see
+        :mod:`hierchoice.diagnostics.calibration` for why, and for the graded bands.
     """
     whole_number(bins, "reliability(bins=...)")
     panel = result.panel if panel is None else panel
@@ -215,8 +217,9 @@ def reliability(result: Any, *, bins: int = 10, panel: ChoicePanel | None = None
         if n == 0:
             continue
         mp = float(p[sel].mean())
+        var = float(np.sum(p[sel] * (1 - p[sel])))  # variance of the number chosen, outcomes independent
         rows.append({"bin_lower": b / bins, "bin_upper": (b + 1) / bins, "n": n, "mean_predicted": mp,
-                     "observed": float(y[sel].mean()), "se": math.sqrt(max(mp * (1 - mp), 0.0) / n)})
+                     "observed": float(y[sel].mean()), "se": math.sqrt(max(var, 0.0)) / n})
     return pd.DataFrame(rows, columns=["bin_lower", "bin_upper", "n", "mean_predicted", "observed", "se"])
 
 

@@ -7,8 +7,9 @@ A results folder holds
 
 ``posterior.nc``
     ArviZ InferenceData as NetCDF: posterior (reported variables only),
-    sample_stats, observed_data, constant_data (the panel arrays) and, with
-    person draws, log_likelihood at the task level. Its attributes carry the
+    sample_stats, observed_data, constant_data (the panel arrays). The task-level
+    log_likelihood is not stored when person draws are (it is rebuilt from them
+    by :func:`hierchoice.diagnostics.loo.task_loo`); its attributes carry the
     spec (TOML), the data summary, the panel's terms and the fit info (JSON).
 ``population.csv``
     Population parameters with 90 % equal-tailed intervals and the implied
@@ -198,9 +199,15 @@ def _attrs_for(result: ChoiceFit) -> dict[str, str]:
 
 def save_fit(result: ChoiceFit, out: str | Path, *, overwrite: bool = True, extra: dict[str, Any] | None = None) -> Path:
     """Write ``result`` into the folder ``out`` (atomically; see the module docstring)."""
+    import arviz as az
+
     out = Path(out)
     idata = result.idata
     attrs = _attrs_for(result)
+    if "log_likelihood" in idata.groups() and result.has_person_draws:
+        # a function of the person tastes and the data (both stored): rebuilt when needed
+        # (hierchoice.diagnostics.loo.task_loo); storing it would more than double the file
+        idata = az.InferenceData(**{g: getattr(idata, g) for g in idata.groups() if g != "log_likelihood"})
     with atomic_dir(out, kind="results", overwrite=overwrite) as tmp:
         for group in idata.groups():
             getattr(idata, group).attrs.update(attrs if group == "posterior" else {})

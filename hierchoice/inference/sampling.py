@@ -9,6 +9,7 @@ the task-level log_likelihood) with the panel and the spec it came from.
 
 from __future__ import annotations
 
+import datetime
 import importlib.util
 import logging
 import time
@@ -241,6 +242,8 @@ def fit(
         "wall_seconds": round(wall, 3),
         "approximate": method == "advi",
         "method": "ADVI (mean-field)" if method == "advi" else "NUTS",
+        # when the fit finished, in UTC (the report's "fitted" line)
+        "created_at": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
     }
     if method == "advi":
         info["advi_iterations"] = advi_iterations

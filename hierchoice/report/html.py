@@ -132,7 +132,7 @@ def _verdict_block(status: dict[str, Any]) -> str:
             subject = f" {c.get('subject')}" if c.get("subject") else ""
             advice = f" — {c.get('advice')}" if c.get("advice") else ""
             items.append(f"<li><span class='badge {v}'>{_e(v)}</span> <strong>{_e(c.get('check'))}{_e(subject)}"
-                         f"</strong> = {_e(_num(c.get('value')))} (rule: {_e(c.get('rule', c.get('threshold')))})"
+                         f"</strong> = {_e(c.get('shown') or _num(c.get('value')))} (rule: {_e(c.get('rule', c.get('threshold')))})"
                          f"{_e(advice)}</li>")
     reason = f"<p><strong>Why:</strong> {_e(status['reason'])}</p>" if verdict == "not checked" and status.get(
         "reason") else ""
@@ -145,7 +145,7 @@ def _verdict_block(status: dict[str, Any]) -> str:
 
 
 def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None = None,
-                 prob: float = DEFAULT_PROB) -> Path:
+                 prob: float = DEFAULT_PROB, title: str | None = None) -> Path:
     """Write ``report.html`` and its CSV tables into a results folder.
 
     Parameters
@@ -158,6 +158,9 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
         written with it.
     prob : float, default 0.9
         Probability mass of the credible intervals.
+    title : str, optional
+        What the results are of (the page title reads "Choice model results: TITLE"). Default: the results
+        folder's name, or its parent's when the folder has a generic name such as ``results``.
 
     Returns
     -------
@@ -201,21 +204,50 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
                          "market table (one row per alternative, the data's attribute columns) and run "
                          "<code>hierchoice report DIR --market market.csv</code>; see docs/reporting.md.</p>", False))
     sections.append(("cautions", "Cautions", _cautions_section(), False))
-    files = sorted([REPORT_FILE, *csv])
-    sections.append(("files", "Files", "<p>Written beside this report:</p><ul>"
-                     + "".join(f"<li>{_e(f)}</li>" for f in files) + "</ul>", False))
-
     for name, table in csv.items():
         write_with(folder / name, lambda tmp, t=table: t.to_csv(tmp, index=False, encoding="utf-8"))
-    page = _page(result, folder, status, sections)
+    sections.append(("files", "Files", _files_list(folder, [REPORT_FILE, *csv]), False))
+    page = _page(result, folder, status, sections, title or _default_title(folder))
     return atomic_write_text(folder / REPORT_FILE, page)
 
 
+#: What each file of a results folder holds (the Files section lists every file the folder has).
+_FILE_NOTES = {
+    "posterior.nc": "the posterior draws, data and fit settings (NetCDF; hierchoice.load_fit reopens it)",
+    "spec.toml": "the spec as fitted",
+    "fit.log": "the fit's settings and timing",
+    "diagnostics.json": "every convergence and predictive check (hierchoice check)",
+    REPORT_FILE: "this report",
+    "population_tastes.csv": "population tastes: every quantity with HDI and equal-tailed intervals",
+    "person_tastes.csv": "each respondent's tastes", "wtp.csv": "willingness to pay across people",
+    "person_wtp.csv": "each respondent's willingness to pay", "shares.csv": "the market scenario's shares",
+    "holdout.json": "held-out validation (hierchoice holdout)", "holdout_tasks.csv": "each held-out task's score",
+}
+_GENERIC_NAMES = {"results", "result", "out", "output", "outputs", "fit", "fits"}
+
+
+def _default_title(folder: Path) -> str:
+    """The results folder's name, or its parent's when the folder has a generic name ("results")."""
+    here = folder.resolve()
+    if here.name.lower() in _GENERIC_NAMES and here.parent.name:
+        return here.parent.name
+    return here.name
+
+
+def _files_list(folder: Path, writing: Sequence[str]) -> str:
+    """Every file the folder holds (and those being written with this report), with what each one is."""
+    names = sorted({p.name for p in folder.iterdir() if p.is_file() and not p.name.startswith(".")}
+                   | set(writing))
+    items = "".join(f"<li><code>{_e(n)}</code>" + (f" — {_e(_FILE_NOTES[n])}" if n in _FILE_NOTES else
+                    " — diagnostic plot" if n.endswith(".png") else "") + "</li>" for n in names)
+    return f"<p>The results folder holds {len(names)} files:</p><ul>{items}</ul>"
+
+
 def _page(result: ChoiceFit, folder: Path, status: dict[str, Any],
-          sections: Sequence[tuple[str, str, str, bool]]) -> str:
+          sections: Sequence[tuple[str, str, str, bool]], name: str) -> str:
     from .._version import __version__
 
-    title = f"Choice model results: {folder.resolve().name}"
+    title = f"Choice model results: {name}"
     now = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     s = result.panel.summary
     toc = "".join(f"<li><a href='#{a}'>{_e(t)}</a></li>" for a, t, _b, _p in sections)

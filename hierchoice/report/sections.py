@@ -12,6 +12,7 @@ functions of ``hierchoice.analysis``; sections that compute a table also add it,
 from __future__ import annotations
 
 import datetime as _dt
+import json
 from pathlib import Path
 from typing import Any
 
@@ -53,7 +54,7 @@ def _convergence_section(status: dict[str, Any], folder: Path) -> str:
         parts.append(f"<p>No convergence checks are available for this fit{_e(why)}. Until they are run and pass, "
                      "treat every number in this report as provisional.</p>")
     if status["checks"]:
-        rows = [[c.get("check", ""), c.get("subject", ""), _num(c.get("value")), c.get("rule", c.get("threshold", "")),
+        rows = [[c.get("check", ""), c.get("subject", ""), c.get("shown") or _num(c.get("value")), c.get("rule", c.get("threshold", "")),
                  _Raw(f"<span class='badge {_normal_verdict(c.get('verdict')).replace(' ', '')}'>"
                       f"{_e(c.get('verdict', ''))}</span>"), c.get("advice", "")]
                 for c in status["checks"]]
@@ -120,14 +121,59 @@ def _fit_section(status: dict[str, Any], folder: Path) -> str | None:
         path = folder / str(name) if name else None
         if path is not None and path.is_file() and path.parent.resolve() == folder.resolve():
             parts.append(_png_file(path, alt))
+            if key == "reliability":
+                parts.append("<p class='caption'>In-sample reliability: each respondent's tastes were estimated "
+                             "from these very choices, so the points lie off the diagonal (observed shares more "
+                             "extreme than predicted) even when the model is right. It can show gross errors "
+                             "(a missing constant, a wrong sign); it cannot show calibration, and it is not graded. "
+                             "The held-out calibration below (hierchoice holdout) is the test.</p>")
+    parts.append(_holdout_section(folder))
     return "".join(parts) or None
+
+
+def _holdout_section(folder: Path) -> str:
+    """The held-out validation written by ``hierchoice holdout`` (``holdout.json``), or how to run it."""
+    path = folder / "holdout.json"
+    if not path.is_file():
+        return ("<h3>Held-out tasks</h3><p>No holdout validation in this folder. <code>hierchoice holdout DATA "
+                "--spec SPEC --out THIS_FOLDER --tasks 2</code> refits without each respondent's last tasks and "
+                "scores them: the honest test of prediction and calibration.</p>")
+    try:
+        h = json.loads(path.read_text(encoding="utf-8"))
+        rows = [[r["model"], _pct(r["hit_rate"]), _num(r["mean_lpd"]), _num(r["n_tasks"])] for r in h["table"]]
+        check = h["checks"][0]
+        split = h.get("split", {})
+    except (OSError, ValueError, KeyError, TypeError, IndexError) as err:
+        return f"<h3>Held-out tasks</h3><p>holdout.json could not be read ({_e(type(err).__name__)}).</p>"
+    verdict = _normal_verdict(check.get("verdict"))
+    parts = [f"<h3>Held-out tasks <span class='badge {verdict.replace(' ', '')}'>{_e(verdict)}</span></h3>",
+             f"<p>Each respondent's last {_e(split.get('tasks', '?'))} task(s) ({_e(split.get('method', ''))}) "
+             f"were left out, the models refitted on the other {_num(h.get('n_train_tasks'))} tasks, and the "
+             f"{_num(h.get('n_test_tasks'))} held-out tasks predicted from each respondent's posterior tastes.</p>",
+             _table(["model", "hit rate", "mean log predictive density per task", "tasks"], rows,
+                    numeric=[1, 2, 3]),
+             "<p class='caption'>mixed: this model; fixed: the same utility with everyone's tastes equal; chance: "
+             "guessing among the available alternatives. Higher is better in both columns.</p>"]
+    bins = [r for r in h.get("reliability", []) if isinstance(r, dict)]
+    if bins:
+        brows = [[f"{r['bin_lower']:.1f}–{r['bin_upper']:.1f}", _num(r["n"]), _num(r["mean_predicted"]),
+                  _num(r["observed"]), f"{_num(r['band_low'])} – {_num(r['band_high'])}",
+                  "yes" if r.get("outside") else ("" if r.get("graded") else "not graded")] for r in bins]
+        parts.append(_table(["predicted bin", "predictions", "mean predicted", "observed share", "band",
+                             "outside"], brows, numeric=[1, 2, 3, 4]))
+    parts.append(f"<p class='caption'>Calibration: {_e(check.get('rule', ''))}. "
+                 f"{_e(check.get('advice') or check.get('detail', ''))}</p>")
+    png = folder / str(h.get("plot", ""))
+    if h.get("plot") and png.is_file() and png.parent.resolve() == folder.resolve():
+        parts.append(_png_file(png, "held-out reliability diagram"))
+    return "".join(parts)
 
 
 def _job_section(result: ChoiceFit, folder: Path) -> str:
     info, panel = result.info, result.panel
     s = panel.summary
     lo, med, hi = s.tasks_per_person
-    created = str(result.posterior.attrs.get("created_at", ""))
+    created = str(info.get("created_at") or result.posterior.attrs.get("created_at", ""))
     try:
         stamp = _dt.datetime.fromisoformat(created)
         created = stamp.astimezone(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")

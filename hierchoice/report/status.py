@@ -87,6 +87,13 @@ def convergence_status(folder: str | Path, result: ChoiceFit | None = None) -> d
     if report is None:
         return {"verdict": "not checked", "checks": [], "reason": "; ".join(reasons), "source": ""}
     checks = [c for c in report.get("checks", []) if isinstance(c, dict)]
+    try:  # a diagnostics.json from before values were stored as text: format them as the checks do
+        from ..diagnostics.checks import format_check_value
+
+        for c in checks:
+            c.setdefault("shown", format_check_value(str(c.get("check")), c.get("value"), c.get("threshold")))
+    except Exception as err:  # the checks module is broken: the report shows the raw values
+        log.warning("check values left unformatted: %s", err)
     verdict = _normal_verdict(report.get("verdict"))
     if verdict == "not checked" and checks:
         verdicts = {_normal_verdict(c.get("verdict")) for c in checks}
