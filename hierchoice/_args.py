@@ -5,13 +5,15 @@ Used by the spec (every TOML key) and by public functions for their numeric opti
 
 from __future__ import annotations
 
+import argparse
 import difflib
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from typing import Any
 
 from .exceptions import SpecError
 
-__all__ = ["check_keys", "choice", "text", "text_list", "label_list", "pattern_check", "flag", "whole_number"]
+__all__ = ["check_keys", "choice", "text", "text_list", "label_list", "pattern_check", "flag", "whole_number",
+           "whole_number_option"]
 
 
 def check_keys(table: Mapping[str, Any], allowed: set[str], where: str) -> None:
@@ -77,3 +79,21 @@ def whole_number(value: Any, where: str, *, minimum: int = 1) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
         raise SpecError(f"{where} must be a whole number >= {minimum}, got {value!r}.")
     return value
+
+
+def whole_number_option(minimum: int = 1) -> Callable[[str], int]:
+    """An ``argparse`` ``type``: a whole number >= ``minimum``, refused when the command line is read.
+
+    So a bad ``--draws 0`` is refused before any file is read, with the message shape of :func:`whole_number`.
+    """
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            value = None
+        if value is None or value < minimum:
+            raise argparse.ArgumentTypeError(f"must be a whole number >= {minimum}, got {text!r}")
+        return value
+
+    parse.__name__ = f"whole number >= {minimum}"  # argparse names the type by it
+    return parse

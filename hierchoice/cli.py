@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
+import logging
 import sys
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 
+from ._args import whole_number_option
 from .exceptions import ArchiveError, HierchoiceError
 
 EXIT_BAD_INPUT = 2
@@ -76,10 +79,37 @@ def _cmd_holdout(args: argparse.Namespace) -> int:
     return 0
 
 
+def _results_folder(folder: str) -> Path:
+    """``folder`` as a path, refused here if it does not exist or is not a folder (before anything is read)."""
+    path = Path(folder)
+    if not path.exists():
+        raise ArchiveError(f"The results folder {folder!r} does not exist; give the folder that 'hierchoice fit "
+                           "--out' wrote.")
+    if not path.is_dir():
+        raise ArchiveError(f"{folder!r} is a file, not a results folder; give the folder that 'hierchoice fit "
+                           "--out' wrote.")
+    return path
+
+
+@contextlib.contextmanager
+def _printed_here() -> Iterator[None]:
+    """Hold back the library's log of its warning records: the command prints each record once itself."""
+    logger = logging.getLogger("hierchoice")
+
+    def hold(record: logging.LogRecord) -> bool:
+        return False
+
+    logger.addFilter(hold)
+    try:
+        yield
+    finally:
+        logger.removeFilter(hold)
+
+
 def _cmd_report(args: argparse.Namespace) -> int:
     from .report.html import write_report
 
-    path = write_report(Path(args.folder), market=args.market, prob=args.prob)
+    path = write_report(_results_folder(args.folder), market=args.market, prob=args.prob)
     print(f"report: {path}")
     return 0
 
@@ -96,13 +126,14 @@ def _cmd_shares(args: argparse.Namespace) -> int:
         if target in (Path(args.market).resolve(), (Path(args.folder) / POSTERIOR_FILE).resolve()):
             raise ArchiveError(f"--out {args.out!r} is one of the inputs and would be overwritten; choose another "
                                "file name for the share table.")
-    result = load_fit(args.folder)
-    table = predict_shares(result, args.market, persons=args.persons, prob=args.prob)
+    result = load_fit(_results_folder(args.folder))
+    with _printed_here():  # predict_shares logs its warnings too; printed below, once
+        table = predict_shares(result, args.market, persons=args.persons, prob=args.prob)
     if args.out:
         write_with(Path(args.out), lambda tmp: table.to_csv(tmp, index=False))
     print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     for record in table.attrs.get("warnings", []):
-        print(f"warning: {record.message}", file=sys.stderr)
+        print(f"{'warning' if record.level == 'warning' else 'note'}: {record.message}", file=sys.stderr)
     if args.out:
         print(f"\nwrote {args.out}")
     return 0
@@ -163,15 +194,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("data", help="long (or wide) CSV or Parquet file")
     p.add_argument("--spec", required=True, help="the TOML spec")
     p.add_argument("--out", required=True, help="results folder: a new one, or one that hierchoice wrote earlier (replaced whole, atomically)")
-    p.add_argument("--draws", type=int, help="draws per chain (overrides [sampling])")
-    p.add_argument("--tune", type=int, help="tuning steps per chain")
-    p.add_argument("--chains", type=int, help="number of chains")
-    p.add_argument("--seed", type=int, help="random seed: the same seed gives the same posterior")
+    # whole numbers checked as the command line is read, before the data: the spec's own limits
+    p.add_argument("--draws", type=whole_number_option(1), help="draws per chain, >= 1 (overrides [sampling])")
+    p.add_argument("--tune", type=whole_number_option(0), help="tuning steps per chain, >= 0")
+    p.add_argument("--chains", type=whole_number_option(1), help="number of chains, >= 1")
+    p.add_argument("--seed", type=whole_number_option(0),
+                   help="random seed, >= 0: the same seed gives the same posterior")
     p.add_argument("--backend", choices=["auto", "pymc", "nutpie", "numpyro"], help="NUTS implementation")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--approximate", action="store_true",
                    help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
-    p.add_argument("--person-batch", type=int, default=None, metavar="N",
+    p.add_argument("--person-batch", type=whole_number_option(1), default=None, metavar="N",
                    help="with --approximate: persons per random batch (default: 500 when the panel has over "
                         "1000 persons, else all)")
     p.set_defaults(func=_cmd_fit)
@@ -224,8 +257,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="run the whole job on the invented Harbourline ferry survey")
     p.add_argument("--out", default="hierchoice-demo", help="output folder (default: hierchoice-demo)")
-    p.add_argument("--persons", type=int, default=300, help="respondents to simulate (default: 300)")
-    p.add_argument("--seed", type=int, default=7, help="simulation seed (default: 7)")
+    p.add_argument("--persons", type=whole_number_option(1), default=300,
+                   help="respondents to simulate, at least 1 (default: 300)")
+    p.add_argument("--seed", type=whole_number_option(0), default=7, help="simulation seed (default: 7)")
     p.add_argument("--quick", action="store_true", help="few draws: a smoke run, not for reading results")
     p.set_defaults(func=_cmd_demo)
     return parser

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from ._args import whole_number
 from ._io import atomic_write_text, make_folder, write_with
 from .data.panel import ChoicePanel
 from .simulate import ferry_scenario
@@ -14,6 +15,7 @@ __all__ = ["write_demo_data", "run_demo"]
 
 def write_demo_data(out: Path, *, persons: int = 300, seed: int = 7) -> tuple[Path, Path]:
     """Write the demo survey (``harbourline.csv``) and its spec (``harbourline.toml``) into ``out``."""
+    whole_number(persons, "persons (respondents to simulate)")  # before a folder is made
     out = make_folder(out, "demo")
     sim = ferry_scenario(n_persons=persons, seed=seed, correlated=DEMO_CORRELATED)
     sim.spec["sampling"] = dict(DEMO_SAMPLING)
