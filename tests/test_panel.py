@@ -365,13 +365,13 @@ def test_nullable_boolean_indicator_with_missing(simple_long: pd.DataFrame, simp
     ok = ChoicePanel.from_frame(table, simple_spec)
     assert ok.n_tasks == 4
     table.loc[3, "chosen"] = pd.NA
-    with pytest.raises(DataError, match=r"'chosen' \(chosen indicator\) must be 0/1.*rows 3"):
+    with pytest.raises(DataError, match=r"'chosen' \(chosen indicator\) must be 0/1.*at row 3\."):
         ChoicePanel.from_frame(table, simple_spec)
 
 
 def test_infinite_attribute(simple_long: pd.DataFrame, simple_spec: dict[str, Any]) -> None:
     simple_long.loc[5, "minutes"] = np.inf
-    with pytest.raises(DataError, match="'minutes' has infinite values at rows 5"):
+    with pytest.raises(DataError, match=r"'minutes' has infinite values at row 5\."):
         ChoicePanel.from_frame(simple_long, simple_spec)
 
 

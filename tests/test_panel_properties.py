@@ -23,7 +23,7 @@ from hierchoice.exceptions import first_few
 ROLES = ("person", "task", "alternative", "chosen", "available", "x", "w", "z")
 # column names; names of the panel's own helper columns are rejected on purpose (tested in test_panel.py)
 _ident = st.text(alphabet="abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ_ é", min_size=1, max_size=8).filter(
-    lambda s: s not in ("_pos", "_first_chosen", "_chosen", "_avail", "_row") and not s.startswith("_v_"))
+    lambda s: s not in ("_pos", "_first_chosen", "_chosen", "_avail", "_row", "_line") and not s.startswith("_v_"))
 
 
 @dataclass
@@ -53,10 +53,12 @@ def valid_cases(draw: st.DrawFn, task_scope: str | None = None) -> Case:
         for t in range(int(rng.integers(1, 5))):
             task: Any = (i * 10 + t) if scope == "global" else t + 1
             task = f"t{task}" if text_tasks else task
-            shown = [a for a in alts if a == alts[0] or rng.random() < 0.7]
+            # the first task offers a choice (a panel without one is refused); others may be forced
+            first = i == 0 and t == 0
+            shown = alts[:2] if first else [a for a in alts if a == alts[0] or rng.random() < 0.7]
             pick = shown[int(rng.integers(len(shown)))]
             for a in shown:
-                offered = 1 if (a == pick or not with_avail) else int(rng.random() < 0.7)
+                offered = 1 if (first or a == pick or not with_avail) else int(rng.random() < 0.7)
                 x = float(rng.choice([0.0, 1.5, -2.0, 3.0]))
                 rows.append({
                     names["person"]: person, names["task"]: task, names["alternative"]: a,
@@ -114,6 +116,13 @@ def test_valid_cases_load(case: Case) -> None:
     assert (panel.X[~panel.available] == 0).all()
     n_avail = case.frame[case.names["available"]].sum() if "available" in case.spec["columns"] else len(case.frame)
     assert len(panel.to_long()) == n_avail
+    # tasks with one available alternative are kept and counted in a note, never silently
+    offered = case.frame[case.names["available"]] if "available" in case.spec["columns"] else 1
+    per_task = case.frame.assign(_n=offered).groupby([case.names["person"], case.names["task"]])["_n"].sum()
+    forced = int((per_task < 2).sum())
+    assert int((panel.available.sum(axis=2)[panel.task_mask] < 2).sum()) == forced
+    notes = [n for n in panel.summary.notes if "only one available alternative" in n]
+    assert bool(notes) == (forced > 0) and all(n.startswith(f"{forced} task") for n in notes)
 
 
 # --------------------------------------------------------------------------- one defect at a time

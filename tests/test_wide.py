@@ -82,7 +82,7 @@ def test_choice_labels_and_availability_pattern() -> None:
         (lambda w: w.drop(columns="id"), "'id' (person)"),
         (lambda w: w.drop(columns="pick"), "'pick' (wide.choice)"),
         (lambda w: w.drop(columns=["price1", "price2", "price3"]), "Attribute 'price': no column 'price1'"),
-        (lambda w: w.assign(pick=[2, 4, 1]), "'pick' has values '4' at rows 1"),
+        (lambda w: w.assign(pick=[2, 4, 1]), "'pick' has values '4' at row 1 "),
         (lambda w: w.assign(pick=[2, np.nan, 1]), "'pick' has values"),
         (lambda w: w.iloc[:0], "empty"),
     ],

@@ -16,7 +16,7 @@ import pandas as pd
 
 from ..exceptions import DataError, first_few
 from ..spec import AttributeSpec, Spec
-from .validate import ValidationSummary, _check_missing, _label, _rows
+from .validate import MAX_MAGNITUDE, ValidationSummary, _check_missing, _label, _rows
 
 __all__ = ["Term"]
 
@@ -83,14 +83,15 @@ def _numeric(df: pd.DataFrame, attr: AttributeSpec, missing: pd.Series, exempt: 
         if bad.any():
             shown = first_few(col[bad].astype(str).unique().tolist())
             raise DataError(
-                f"Attribute column {attr.source!r} is not numeric: values {shown} at rows "
+                f"Attribute column {attr.source!r} is not numeric: values {shown} at "
                 f"{_rows(df, bad)}. Give coding = \"dummy\" (with base = ...) for a categorical attribute."
             )
         col = numeric
     col = col.astype(float)
     inf = ~np.isfinite(col) & ~col.isna()
     if inf.any():
-        raise DataError(f"Attribute column {attr.source!r} has infinite values at rows {_rows(df, inf)}.")
+        raise DataError(f"Attribute column {attr.source!r} has infinite values at {_rows(df, inf)}. Fix or remove "
+                        "them: a utility must be a finite number.")
     _check_missing(df, attr.source, missing, exempt, summary)
     return col.fillna(0.0)
 
@@ -140,3 +141,63 @@ def _check_identified(terms: Sequence[Term], values: Mapping[str, pd.Series], av
             )
     if not terms:
         raise DataError("The spec gives no attribute, constant or dynamic term: the model would have no taste.")
+
+
+#: Terms coded 0/1 (or -1/0/1) by hierchoice itself: their magnitude needs no check.
+_CODED_KINDS = ("dummy", "effects", "constant", "lagged_choice")
+
+
+def _check_magnitudes(df: pd.DataFrame, terms: Sequence[Term], values: Mapping[str, pd.Series], avail: pd.Series,
+                      spec: Spec) -> None:
+    """Every attribute value is small enough, raw and after the internal scaling, to give a finite, exact utility.
+
+    The scaling is the model's: each numeric term divided by its standard deviation over the available rows.
+    """
+    for term in terms:
+        if term.kind in _CODED_KINDS:
+            continue
+        value = values[term.name].where(avail, 0.0).astype(float)
+        column = f" (column {spec.attributes[term.source].source!r})" if term.source in spec.attributes else ""
+        big = value.abs() > MAX_MAGNITUDE
+        if big.any():
+            shown = first_few([float(v) for v in value[big].unique()])
+            raise DataError(
+                f"Attribute {term.name!r}{column} has values beyond +/-{MAX_MAGNITUDE:g} ({shown}) at "
+                f"{_rows(df, big)}: a utility built from them would overflow or lose its precision. Check them for "
+                "a data-entry error, or rescale the column (for example thousands instead of units)."
+            )
+        used = value[avail].to_numpy()
+        sd = float(np.std(used)) if used.size else 0.0
+        scaled = value.abs() / sd if sd > 0 else value * 0.0
+        far = scaled > MAX_MAGNITUDE
+        if far.any():
+            raise DataError(
+                f"Attribute {term.name!r}{column} has values up to {float(scaled.max()):.3g} standard deviations "
+                f"(sd {sd:.3g}) from 0 at {_rows(df, far)}: the model divides each attribute by its standard "
+                "deviation, and values this far from 0 leave utility differences without precision. Subtract a "
+                "constant from the column (for example its mean) so that its values sit near 0."
+            )
+
+
+def _check_enough_persons(n_persons: int, terms: Sequence[Term], spec: Spec, summary: ValidationSummary | None) -> None:
+    """Correlated random tastes need more persons than random tastes; one person shows no spread of tastes.
+
+    Correlated tastes with fewer persons than random tastes + 1 are a :class:`DataError`: a sample correlation
+    matrix of ``R`` tastes from ``n <= R`` persons is singular. A single person with independent random tastes is
+    noted in ``summary``: their spread across persons is then the prior's.
+    """
+    random = [t.name for t in terms if t.taste != "fixed"]
+    if not random:
+        return
+    if spec.model.correlated and n_persons < len(random) + 1:
+        raise DataError(
+            f"model.correlated = true estimates the correlations of {len(random)} random tastes "
+            f"({first_few(random)}) from how tastes differ across persons, and the panel has {n_persons} "
+            f"person{'s' if n_persons != 1 else ''}: at least {len(random) + 1} (random tastes + 1) are needed, and "
+            "many more to learn anything. Set model.correlated = false, make some tastes fixed, or add persons."
+        )
+    if n_persons == 1 and summary is not None:
+        summary.notes.append(
+            f"only 1 person: the spread across persons of the random tastes ({first_few(random)}) cannot be "
+            "learnt from the data (its posterior is its prior). Make the tastes fixed, or add persons."
+        )

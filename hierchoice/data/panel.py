@@ -39,19 +39,21 @@ import xarray as xr
 
 from ..exceptions import DataError, SpecError
 from ..spec import ColumnRoles, Spec, load_spec
-from .coding import Term, _check_identified, _code_attributes
+from .coding import Term, _check_enough_persons, _check_identified, _check_magnitudes, _code_attributes
 from .dynamics import _add_dynamics, _initial_conditions, _task_positions
-from .read import read_table, wide_to_long
+from .read import _to_long, read_table
 from .validate import (
     ValidationSummary,
     _alternatives,
     _check_columns,
     _check_covariates_vary,
     _check_ids,
+    _check_some_choice,
     _check_unique_keys,
     _drop_invalid_tasks,
     _indicators,
     _label,
+    _note_tasks_without_choice,
     _person_covariates,
     _prepare,
 )
@@ -128,7 +130,7 @@ class ChoicePanel:
         if not isinstance(frame, pd.DataFrame):
             raise DataError(f"Expected a pandas DataFrame, got {type(frame).__name__}.")
         if spec.wide is not None:
-            frame = wide_to_long(frame, spec)
+            frame = _to_long(frame, spec)
         return _build(frame.copy(), spec)
 
     @classmethod
@@ -224,6 +226,7 @@ class ChoicePanel:
                 "attributes, coding, constants, dynamics, covariates or [data]); validate the table again with it."
             )
         terms = [_retaste(term, spec) for term in self.terms]
+        _check_enough_persons(self.n_persons, terms, spec, None)
         return ChoicePanel(
             X=self.X, available=self.available, task_mask=self.task_mask, chosen=self.chosen,
             task_ids=self.task_ids, lag_missing=self.lag_missing, Z=self.Z, persons=self.persons,
@@ -320,6 +323,7 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
     _check_unique_keys(df, spec)
     alternatives, is_opt_out = _alternatives(df, spec)
     df, chosen, avail, is_opt_out = _drop_invalid_tasks(df, chosen, avail, is_opt_out, spec, summary)
+    _check_some_choice(df, avail, spec)
 
     # 5. attributes: numeric columns, categorical coding, constants
     terms, values = _code_attributes(df, spec, alternatives, ~avail | is_opt_out, summary)
@@ -332,10 +336,14 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
         keep_idx = df.index
         chosen, avail, is_opt_out = chosen.loc[keep_idx], avail.loc[keep_idx], is_opt_out.loc[keep_idx]
 
-    # 7. identification: an attribute must vary over available alternatives
-    _check_identified(terms, values, avail, is_opt_out, spec)
+    # 7. tasks with one available alternative carry no information: kept, and counted in the notes
+    _note_tasks_without_choice(df, avail, spec, summary)
 
-    # 8. person covariates: person_codes (row,) indexes person_labels (person,)
+    # 8. identification: an attribute must vary over available alternatives; magnitudes a utility can hold
+    _check_identified(terms, values, avail, is_opt_out, spec)
+    _check_magnitudes(df, terms, values, avail, spec)
+
+    # 9. person covariates: person_codes (row,) indexes person_labels (person,)
     person_codes, person_labels = pd.factorize(df[cols.person], sort=False)
     cov_names, cov_values = _person_covariates(df, spec, person_codes, person_labels)
     if spec.dynamics.initial_conditions:
@@ -344,7 +352,7 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
         cov_values += vals
     _check_covariates_vary(cov_names, cov_values)
 
-    # 9. dense arrays
+    # 10. dense arrays
     arrays = _dense_arrays(df, cols, person_codes, len(person_labels), alternatives, terms, values, chosen, avail,
                            lag_missing)
     Z = np.column_stack(cov_values) if cov_values else np.zeros((len(person_labels), 0))
@@ -353,6 +361,7 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
         covariates=cov_names, summary=summary, spec=spec,
     )
     _fill_counts(panel)
+    _check_enough_persons(panel.n_persons, panel.terms, spec, summary)
     return panel
 
 

@@ -87,8 +87,31 @@ class ValidationSummary:
 # --------------------------------------------------------------------------- message helpers
 
 
+#: The index name :func:`~hierchoice.data.read.read_table` gives a file's rows: the index holds file line numbers
+#: (the header is line 1). Any other index is the frame's own, and messages name its labels as rows.
+LINE_INDEX = "file line"
+
+#: The helper column ``_prepare`` keeps each row's label in: file lines, or the user's index labels.
+_LINE, _ROW = "_line", "_row"
+
+
 def _rows(frame: pd.DataFrame, mask: pd.Series | np.ndarray) -> str:
-    return first_few(frame.index[np.asarray(mask)].tolist())
+    """The rows where ``mask`` holds, as the user sees them: ``"file lines 6, 9"`` or ``"rows 4, 7"``.
+
+    A file's rows are named by their line in the file (header = line 1); a DataFrame's by its own index labels.
+    After ``_prepare`` the labels live in the helper column ``_line`` or ``_row``; before it, in the index.
+    Rows sharing a label (the long rows of one wide row) are named once.
+    """
+    mask = np.asarray(mask, dtype=bool)
+    if _LINE in frame.columns or _ROW in frame.columns:
+        is_line = _LINE in frame.columns
+        labels = frame[_LINE if is_line else _ROW].to_numpy()[mask]
+    else:
+        is_line = frame.index.name == LINE_INDEX
+        labels = frame.index.to_numpy()[mask]
+    shown = list(dict.fromkeys(v.item() if isinstance(v, np.generic) else v for v in labels))
+    word = ("file line" if is_line else "row") + ("s" if len(shown) > 1 else "")
+    return f"{word} {first_few(shown)}"
 
 
 def _keys(frame: pd.DataFrame, mask: pd.Series | np.ndarray, cols: Sequence[str]) -> str:
@@ -102,8 +125,14 @@ def _label(value: Any) -> str:
     return str(value)
 
 
+#: The largest attribute or covariate magnitude accepted, in the user's units and (attributes) after the model's
+#: internal scaling, division by the standard deviation over the available alternatives. A float64 holds about 16
+#: significant digits, so beyond 1e15 whole units are no longer exact and utility differences lose their digits;
+#: the squares in a standard deviation overflow from about 1e154 (IEEE 754 double precision).
+MAX_MAGNITUDE = 1e15
+
 #: Helper columns the build adds to the table; a role, attribute or covariate column may not use them.
-_RESERVED = ("_pos", "_first_chosen", "_chosen", "_avail", "_row")
+_RESERVED = ("_pos", "_first_chosen", "_chosen", "_avail", _ROW, _LINE)
 
 
 def _check_reserved(columns: Mapping[str, str]) -> None:
@@ -120,11 +149,18 @@ def _check_reserved(columns: Mapping[str, str]) -> None:
 
 
 def _prepare(df: pd.DataFrame) -> pd.DataFrame:
-    """The table with text column names and a 0..n-1 row index (the rows that messages name)."""
+    """The table with text column names, a 0..n-1 row index, and each row's label as the user sees it.
+
+    The label (a file line, or the frame's own index label; see :func:`_rows`) goes into the helper column
+    ``_line`` or ``_row``, so that it travels with the row through every step and messages can name it.
+    """
     if len(df) == 0:
         raise DataError("The choice table is empty: no rows to read.")
     df.columns = [str(c) for c in df.columns]
-    return df.reset_index(drop=True)
+    labels = df.index
+    df = df.drop(columns=[c for c in (_LINE, _ROW) if c in df.columns]).reset_index(drop=True)
+    df[_LINE if labels.name == LINE_INDEX else _ROW] = labels.to_numpy()
+    return df
 
 
 def _check_columns(df: pd.DataFrame, spec: Spec) -> None:
@@ -151,14 +187,15 @@ def _check_id_column(frame: pd.DataFrame, col: str) -> None:
     values = frame[col]
     missing = values.isna()
     if missing.any():
-        raise DataError(f"Column {col!r} has missing ids at rows {_rows(frame, missing)}; every row needs an id.")
+        raise DataError(f"Column {col!r} has missing ids at {_rows(frame, missing)}; every row needs an id.")
     if pd.api.types.is_numeric_dtype(values) or pd.api.types.is_bool_dtype(values):
         return
     kinds = values.map(lambda v: "number" if isinstance(v, (int, float, np.integer, np.floating))
                        else type(v).__name__)
     if kinds.nunique() > 1:
         first_of_each = kinds.drop_duplicates()
-        examples = ", ".join(f"row {i} ({frame.at[i, col]!r}: {k})" for i, k in first_of_each.items())
+        examples = ", ".join(f"{_rows(frame, frame.index == i)} ({frame.at[i, col]!r}: {k})"
+                             for i, k in first_of_each.items())
         raise DataError(
             f"Column {col!r} mixes id types ({', '.join(sorted(kinds.unique()))}): {examples}. "
             "Convert the column to one type (all text or all numbers)."
@@ -182,7 +219,7 @@ def _as_indicator(frame: pd.DataFrame, col: str, role: str) -> pd.Series:
     if bad.any():
         shown = first_few(frame.loc[bad, col].astype(str).unique().tolist())
         raise DataError(
-            f"Column {col!r} ({role}) must be 0/1 or true/false; found {shown} at rows {_rows(frame, bad)}."
+            f"Column {col!r} ({role}) must be 0/1 or true/false; found {shown} at {_rows(frame, bad)}."
         )
     return numeric.astype(bool)
 
@@ -202,7 +239,7 @@ def _check_unique_keys(df: pd.DataFrame, spec: Spec) -> None:
     if dup.any():
         raise DataError(
             f"Duplicate ({cols.person}, {cols.task}, {cols.alternative}) rows: "
-            f"{_keys(df, dup, [cols.person, cols.task, cols.alternative])} at rows {_rows(df, dup)}. "
+            f"{_keys(df, dup, [cols.person, cols.task, cols.alternative])} at {_rows(df, dup)}. "
             "Each alternative may appear once per task."
         )
     if spec.data.task_scope == "global":
@@ -261,7 +298,7 @@ def _drop_invalid_tasks(
             raise DataError(
                 f"Column {cols.chosen!r}: tasks with {what} "
                 f"((person, task): {_keys(df, mask, task_key)}; chosen count per row: "
-                f"{first_few(n_chosen[mask].tolist())}; rows {_rows(df, mask)}). Fix the data, or set "
+                f"{first_few(n_chosen[mask].tolist())}; {_rows(df, mask)}). Fix the data, or set "
                 "data.invalid_tasks = \"drop\" to remove such tasks (they are then counted)."
             )
         summary.count_removed(f"tasks with {what} (data.invalid_tasks = \"drop\")",
@@ -273,13 +310,56 @@ def _drop_invalid_tasks(
     return df, chosen, avail, is_opt_out
 
 
+def _without_choice(df: pd.DataFrame, avail: pd.Series, spec: Spec) -> pd.Series:
+    """Per row: its task offers fewer than two available alternatives, so its choice tells nothing of tastes."""
+    cols = spec.columns
+    return avail.groupby([df[cols.person], df[cols.task]], sort=False).transform("sum") < 2
+
+
+def _check_some_choice(df: pd.DataFrame, avail: pd.Series, spec: Spec) -> None:
+    """At least one task offers a choice (two or more available alternatives)."""
+    if _without_choice(df, avail, spec).all():
+        cols = spec.columns
+        raise DataError(
+            f"No task offers a choice: every task has only one available alternative (column "
+            f"{cols.alternative!r}{f', availability column {cols.available!r}' if cols.available else ''}), so "
+            "every choice was forced and the data say nothing about tastes. Each task needs two or more available "
+            "alternatives: check that the table has one row per alternative per task (long format), or give the "
+            "spec a [wide] table for one row per task."
+        )
+
+
+def _note_tasks_without_choice(df: pd.DataFrame, avail: pd.Series, spec: Spec, summary: ValidationSummary) -> None:
+    """Count the tasks with one available alternative in the summary's notes; kept, they carry no information.
+
+    Such a task's choice was forced: it adds 0 to the log-likelihood. It is kept (it still gives the next task
+    its lagged values) and counted. A panel where no task is left with a choice is a :class:`DataError`.
+    """
+    cols = spec.columns
+    forced = _without_choice(df, avail, spec)
+    if not forced.any():
+        return
+    if forced.all():
+        raise DataError("No task with a choice is left: every remaining task has one available alternative.")
+    n_tasks = df.loc[forced, [cols.person, cols.task]].drop_duplicates().shape[0]
+    persons = df.loc[forced, cols.person].drop_duplicates()
+    n_persons = len(persons)
+    without_any = int((~persons.isin(df.loc[~forced, cols.person])).sum())
+    note = (f"{n_tasks} task{'s' if n_tasks != 1 else ''} of {n_persons} person{'s' if n_persons != 1 else ''} "
+            "offer only one available alternative: kept, but a forced choice says nothing about tastes (it adds 0 "
+            "to the log-likelihood and always counts as a hit)")
+    if without_any:
+        note += f"; {without_any} of them {'has' if without_any == 1 else 'have'} no task with a choice"
+    summary.notes.append(note)
+
+
 def _check_missing(df: pd.DataFrame, column: str, missing: pd.Series, exempt: pd.Series,
                    summary: ValidationSummary) -> None:
     """Missing attribute values are allowed only on ``exempt`` rows (unavailable or opt-out); those are counted."""
     bad = missing & ~exempt
     if bad.any():
         raise DataError(
-            f"Attribute column {column!r} is missing for available alternatives at rows {_rows(df, bad)}. "
+            f"Attribute column {column!r} is missing for available alternatives at {_rows(df, bad)}. "
             "Fill the values, or mark those alternatives unavailable."
         )
     summary.count_filled(f"missing {column!r} on unavailable or opt-out rows", int((missing & exempt).sum()))
@@ -304,13 +384,20 @@ def _person_covariates(
             if bad.any():
                 raise DataError(
                     f"Covariate column {c!r} is not numeric: values {first_few(col[bad].astype(str).unique())} "
-                    f"at rows {_rows(df, bad)}. Code categorical covariates as 0/1 columns."
+                    f"at {_rows(df, bad)}. Code categorical covariates as 0/1 columns."
                 )
             col = pd.to_numeric(col, errors="coerce")
+        huge = col.notna() & ~(col.abs() <= MAX_MAGNITUDE)
+        if huge.any():
+            raise DataError(
+                f"Covariate column {c!r} has values {first_few(col[huge].unique().tolist())} at {_rows(df, huge)}: "
+                f"a covariate must be a finite number within +/-{MAX_MAGNITUDE:g}. Fix the values, or rescale the "
+                "column (for example thousands instead of units)."
+            )
         if col.isna().any():
             raise DataError(
                 f"Covariate column {c!r} is missing for persons "
-                f"{_keys(df, col.isna(), [cols.person])} (rows {_rows(df, col.isna())})."
+                f"{_keys(df, col.isna(), [cols.person])} ({_rows(df, col.isna())})."
             )
         spread = col.groupby(person_codes).agg(lambda s: s.max() - s.min())
         varying = spread[spread > 0].index
