@@ -138,6 +138,13 @@ def test_a_panel_without_any_choice_is_refused(tmp_path: Path, simple_long: pd.D
     spec = tmp_path / "spec.toml"
     spec.write_text(dumps_toml(simple_spec))
     assert main(["validate", str(path), "--spec", str(spec)]) == EXIT_BAD_INPUT
+    wide = pd.DataFrame({"id": [1, 2], "q": [1, 1], "pick": [1, 2], "price1": [1.0, 2.0], "price2": [2.0, 1.0],
+                         "time1": [3, 4], "time2": [5, 4], "av1": [1, 0], "av2": [0, 1]})
+    spec_wide = copy.deepcopy(WIDE_SPEC)
+    spec_wide["columns"]["available"] = "avail"
+    spec_wide["wide"]["available_pattern"] = "av{alternative}"
+    msg = _error(wide, spec_wide)
+    assert "No task offers a choice" in msg and "[wide]" not in msg
 
 
 @pytest.mark.parametrize("value", [1e308, -2e15, np.inf])

@@ -324,8 +324,9 @@ def _check_some_choice(df: pd.DataFrame, avail: pd.Series, spec: Spec) -> None:
             f"No task offers a choice: every task has only one available alternative (column "
             f"{cols.alternative!r}{f', availability column {cols.available!r}' if cols.available else ''}), so "
             "every choice was forced and the data say nothing about tastes. Each task needs two or more available "
-            "alternatives: check that the table has one row per alternative per task (long format), or give the "
-            "spec a [wide] table for one row per task."
+            "alternatives: check the availability of the alternatives, and that the table has one row per "
+            "alternative per task" + ("" if spec.wide else " (long format), or give the spec a [wide] table for a "
+                                       "table with one row per task") + "."
         )
 
 
