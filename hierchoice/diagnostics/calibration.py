@@ -27,7 +27,6 @@ right. :func:`calibration_check` therefore refuses to grade in-sample tables.
 from __future__ import annotations
 
 import math
-from typing import Any
 
 import numpy as np
 import pandas as pd

@@ -22,7 +22,7 @@ import json
 from pathlib import Path
 from typing import Any
 
-from .._io import atomic_write_text, make_folder, write_with
+from .._io import atomic_write_text, claim_folder, make_folder, write_with
 from .._records import jsonable
 from .calibration import calibration_bands, calibration_check
 from .plots import plot_reliability, save_figure
@@ -56,14 +56,16 @@ def holdout_folder(panel: Any, out: str | Path, *, spec: Any = None, tasks: int 
     """Run the holdout validation of ``panel`` and write its files into the results folder ``out``.
 
     ``out`` is a results folder that ``hierchoice fit`` wrote (the files are added to it) or a new folder;
-    :func:`hierchoice._io.make_folder` refuses a folder holding files of the user's before any fit starts.
+    a folder holding files of the user's is refused before any fit starts (:func:`hierchoice._io.claim_folder`),
+    and a new folder is made only once the fits have succeeded.
     ``fit_options`` (draws, tune, chains, backend, fit_seed, progressbar) go to
     :func:`~hierchoice.diagnostics.predictive.holdout_validation`. Returns the summary written to
     ``holdout.json``.
     """
-    folder = make_folder(out, "results", inputs=inputs)
+    claim_folder(out, "results", inputs=inputs)  # refuse before the fits, not after
     result = holdout_validation(panel, spec, tasks=tasks, method=method, seed=seed, compare_fixed=compare_fixed,
                                 **fit_options)
+    folder = make_folder(out, "results", inputs=inputs)  # only now: a failed fit leaves no folder behind
     rel = calibration_bands(reliability(result.fits["mixed"], panel=result.test, bins=bins))
     summary = holdout_summary(result, bins=bins, table=rel)
     info = result.fits["mixed"].info

@@ -154,8 +154,10 @@ def plot_reliability(table: pd.DataFrame, *, in_sample: bool = True) -> Any:
     ax = fig.subplots()
     ax.plot([0, 1], [0, 1], color="grey", lw=1, ls="--", label="calibrated")
     p = bands["mean_predicted"]
+    half = f"±{bands.attrs['z_band']:.2f} SE"
     ax.errorbar(p, p, yerr=[p - bands["band_low"], bands["band_high"] - p], fmt="none", ecolor="lightgrey",
-                elinewidth=6, label=f"±{bands.attrs['z_band']:.2f} SE if calibrated (1 % false alarms)")
+                elinewidth=6, label=f"{half} (a test only on held-out tasks)" if in_sample else
+                f"{half} if calibrated (1 % false alarms)")
     sizes = 20 + 200 * bands["n"] / max(float(bands["n"].max()), 1.0)
     colours = np.where(bands["outside"] & (not in_sample), "tab:red", "tab:blue")
     ax.scatter(p, bands["observed"], s=sizes, c=colours, zorder=3, label="observed share")

@@ -132,7 +132,8 @@ def _verdict_block(status: dict[str, Any]) -> str:
             subject = f" {c.get('subject')}" if c.get("subject") else ""
             advice = f" — {c.get('advice')}" if c.get("advice") else ""
             items.append(f"<li><span class='badge {v}'>{_e(v)}</span> <strong>{_e(c.get('check'))}{_e(subject)}"
-                         f"</strong> = {_e(c.get('shown') or _num(c.get('value')))} (rule: {_e(c.get('rule', c.get('threshold')))})"
+                         f"</strong> = {_e(c.get('shown') or _num(c.get('value')))} "
+                         f"(rule: {_e(c.get('rule', c.get('threshold')))})"
                          f"{_e(advice)}</li>")
     reason = f"<p><strong>Why:</strong> {_e(status['reason'])}</p>" if verdict == "not checked" and status.get(
         "reason") else ""

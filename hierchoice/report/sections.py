@@ -54,7 +54,8 @@ def _convergence_section(status: dict[str, Any], folder: Path) -> str:
         parts.append(f"<p>No convergence checks are available for this fit{_e(why)}. Until they are run and pass, "
                      "treat every number in this report as provisional.</p>")
     if status["checks"]:
-        rows = [[c.get("check", ""), c.get("subject", ""), c.get("shown") or _num(c.get("value")), c.get("rule", c.get("threshold", "")),
+        rows = [[c.get("check", ""), c.get("subject", ""), c.get("shown") or _num(c.get("value")),
+                 c.get("rule", c.get("threshold", "")),
                  _Raw(f"<span class='badge {_normal_verdict(c.get('verdict')).replace(' ', '')}'>"
                       f"{_e(c.get('verdict', ''))}</span>"), c.get("advice", "")]
                 for c in status["checks"]]
@@ -85,7 +86,8 @@ def _fit_section(status: dict[str, Any], folder: Path) -> str | None:
             pairs.append(("in-sample hit rate", f"{_pct(hr.get('hit_rate'))} (chance {_pct(hr.get('chance_rate'))}, "
                                                  f"{_num(hr.get('n_tasks'))} tasks)"))
         if "calibration_error" in pred:
-            pairs.append(("calibration error", _num(pred.get("calibration_error"))))
+            pairs.append(("in-sample calibration error (not graded: see below)",
+                          _num(pred.get("calibration_error"))))
         shares = pred.get("shares")
         if isinstance(shares, list) and shares:
             outside = sum(bool(r.get("outside")) for r in shares if isinstance(r, dict))
