@@ -10,7 +10,7 @@ from collections.abc import Iterator, Sequence
 from pathlib import Path
 
 from ._args import whole_number_option
-from .exceptions import ArchiveError, HierchoiceError
+from .exceptions import ArchiveError, HierchoiceError, SpecError
 
 EXIT_BAD_INPUT = 2
 
@@ -26,6 +26,13 @@ def _cmd_validate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _fit_method(args: argparse.Namespace) -> str:
+    """``--method``, with ``--approximate`` as the older spelling of ``--method advi``."""
+    if args.approximate and args.method not in (None, "advi"):
+        raise SpecError(f"--approximate means --method advi; it cannot be combined with --method {args.method}.")
+    return args.method or ("advi" if args.approximate else "nuts")
+
+
 def _cmd_fit(args: argparse.Namespace) -> int:
     from ._io import claim_folder
     from .data.panel import load_panel
@@ -39,7 +46,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     print(panel.summary)
     result = fit(panel, spec, draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed,
                  backend=args.backend, progressbar=not args.quiet,
-                 method="advi" if args.approximate else "nuts",
+                 method=_fit_method(args),
                  person_batch=args.person_batch if args.person_batch is not None else "auto")
     out = save_fit(result, args.out)
     print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
@@ -204,6 +211,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--approximate", action="store_true",
                    help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
+    p.add_argument("--method", choices=["nuts", "blocked", "advi"], default=None,
+                   help="nuts (default): NUTS on the whole model; blocked: the exact blocked sampler for large "
+                        "panels (10,000+ persons); advi: approximate, intervals too narrow (as --approximate)")
     p.add_argument("--person-batch", type=whole_number_option(1), default=None, metavar="N",
                    help="with --approximate: persons per random batch (default: 500 when the panel has over "
                         "1000 persons, else all)")

@@ -180,7 +180,12 @@ def fit(
     draws, tune, chains, seed, backend, target_accept, cores : optional
         See ``docs/spec.md`` ([sampling]).
     progressbar : bool, default True
-    method : {"nuts", "advi"}, default "nuts"
+    method : {"nuts", "advi", "blocked"}, default "nuts"
+        ``"blocked"`` samples the centred model exactly with the blocked Gibbs-style
+        sampler of :mod:`hierchoice.inference.blocked` (vectorised per-person MALA,
+        conjugate and sufficient-statistic population updates, interweaving): for
+        panels of 10,000 persons and more. ``backend``, ``target_accept`` and
+        ``cores`` do not apply to it.
         ``"advi"`` fits a mean-field Gaussian approximation (Kucukelbir et al. 2017,
         JMLR 18) by stochastic optimisation and draws from it: minutes instead of
         hours for panels beyond full NUTS on one machine (100,000 persons). With
@@ -202,12 +207,14 @@ def fit(
     -------
     ChoiceFit
     """
-    if method not in ("nuts", "advi"):
-        raise SpecError(f"method must be 'nuts' or 'advi', got {method!r}.")
+    if method not in ("nuts", "advi", "blocked"):
+        raise SpecError(f"method must be 'nuts', 'advi' or 'blocked', got {method!r}.")
     batch = _person_batch(person_batch, panel.n_persons, method)
     spec = panel.spec if spec is None else load_spec(spec)
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
                               target_accept=target_accept, cores=cores).for_method(method)
+    if method == "blocked":
+        return _fit_blocked(panel, spec, progressbar=progressbar)
     s = spec.sampling
     panel = panel.with_spec(spec)  # the spec's tastes, not those the panel was validated with
     chosen_backend = resolve_backend(s.backend)
@@ -248,6 +255,32 @@ def fit(
     if method == "advi":
         info["advi_iterations"] = advi_iterations
         info["person_batch"] = batch
+    result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
+    if result.has_person_draws:
+        add_log_likelihood(result)
+    return result
+
+
+def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool) -> ChoiceFit:
+    """``fit(..., method="blocked")``: the blocked sampler, the same result object as NUTS."""
+    from dataclasses import replace
+
+    from .blocked import METHOD_NAME, sample_blocked
+
+    # it samples the centred form's free variables (the posterior of the reported quantities is the same)
+    spec = replace(spec, model=replace(spec.model, parameterization="centred"))
+    s = spec.sampling
+    panel = panel.with_spec(spec)
+    layout = model_layout(panel, spec)
+    keep = [v for v in REPORTED_VARS if s.store_person_draws or v not in ("person_taste", "person_wtp")]
+    t0 = time.perf_counter()
+    log.info("sampling %s chains x %s draws (%s tune) with the blocked sampler", s.chains, s.draws, s.tune)
+    idata = sample_blocked(panel, spec, draws=s.draws, tune=s.tune, chains=s.chains, seed=s.seed, keep=keep,
+                           progressbar=progressbar)
+    wall = time.perf_counter() - t0
+    idata = _tidy_idata(idata, panel, keep)
+    info = {"backend": "blocked", "draws": s.draws, "tune": s.tune, "chains": s.chains, "seed": s.seed,
+            "wall_seconds": round(wall, 3), "approximate": False, "method": METHOD_NAME}
     result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
     if result.has_person_draws:
         add_log_likelihood(result)

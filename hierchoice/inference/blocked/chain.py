@@ -1,0 +1,164 @@
+"""Sweeps, warm-up and chains of the blocked sampler, and the draws as InferenceData.
+
+May import: :mod:`.updates`, :mod:`.problem`, :mod:`.kernels`, ``hierchoice.model``.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ...data.panel import ChoicePanel
+from ...model.build import build_model
+from ...spec import Spec
+from .problem import BlockedProblem, BlockedState, blocked_problem, locations
+from .updates import _asis, _location_conjugate, _location_mala, _update_covariance, _update_persons
+
+log = logging.getLogger("hierchoice")
+
+@dataclass(frozen=True)
+class BlockedSettings:
+    """Tuning of the sweep: MALA steps per person, random-walk steps of the location and ASIS blocks."""
+
+    person_steps: int = 1
+    location_steps: int = 3
+    covariance_steps: int = 2
+    asis_steps: int = 1
+    thin: int = 1
+    precondition: str = "information"
+
+
+def initial_state(prob: BlockedProblem, rng: np.random.Generator) -> BlockedState:
+    """A dispersed start: means near 0, SDs at half their prior scale, persons at their means plus noise."""
+    K, r = prob.n_attributes, prob.n_random
+    mu_free = rng.normal(0.0, 0.3, K) * np.minimum(prob.mean_sd, 1.0)
+    gamma = np.zeros((prob.n_covariates, prob.shifted.size))
+    L = np.diag(0.5 * prob.sd_sd)
+    m = locations(prob, mu_free, gamma)[:, prob.rnd]
+    eta = np.ascontiguousarray(m + 0.1 * rng.standard_normal((prob.n_persons, r)) * (0.5 * prob.sd_sd))
+    return BlockedState(mu_free=mu_free, gamma=gamma, L=L, eta=eta, h=np.full(prob.n_persons, 0.5))
+
+
+def sweep(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, settings: BlockedSettings,
+          adapt_rate: float | None, history: list[np.ndarray] | None) -> None:
+    """One sweep: persons, location, covariance, interweaving."""
+    _update_persons(prob, state, rng, settings.person_steps, adapt_rate, settings.precondition)
+    if prob.conjugate:
+        _location_conjugate(prob, state, rng)
+    else:
+        _location_mala(prob, state, rng, settings.location_steps, adapt_rate, history)
+    _update_covariance(prob, state, rng, settings.covariance_steps)
+    if settings.asis_steps:
+        _asis(prob, state, rng, settings.asis_steps, adapt_rate)
+    state.sweep += 1
+
+
+STAT_NAMES = ("person_accept", "person_step_size", "location_accept", "cov_accept", "asis_accept", "asis_step_size")
+
+
+def run_chain(prob: BlockedProblem, rng: np.random.Generator, *, draws: int, tune: int,
+              settings: BlockedSettings = BlockedSettings(), keep_persons: bool = True,
+              progress: str | None = None) -> dict[str, np.ndarray]:
+    """Run one chain: ``tune`` adapting sweeps, then ``draws * thin`` sweeps keeping every ``thin``-th."""
+    state = initial_state(prob, rng)
+    history: list[np.ndarray] = []
+    r = prob.n_random
+    out: dict[str, list[Any]] = {k: [] for k in ("mu_std", "gamma_std", "L", "eta_std") + STAT_NAMES}
+    total = tune + draws * settings.thin
+    t0 = time.perf_counter()
+    for i in range(total):
+        tuning = i < tune
+        rate = (i + 1.0) ** -0.6 if tuning else None
+        sweep(prob, state, rng, settings, rate, history if tuning else None)
+        if not tuning and (i - tune + 1) % settings.thin == 0:
+            out["mu_std"].append(state.mu_free.copy())
+            out["gamma_std"].append(state.gamma.copy())
+            out["L"].append(state.L.copy())
+            if keep_persons:
+                out["eta_std"].append(state.eta.copy())
+            for k in STAT_NAMES:
+                out[k].append(state.stats.get(k, math.nan))
+        if progress is not None and (i + 1) % max(1, total // 10) == 0:
+            log.info("%s: sweep %d/%d (%.1f s)", progress, i + 1, total, time.perf_counter() - t0)
+            print(f"{progress}: sweep {i + 1}/{total} ({time.perf_counter() - t0:.1f} s)", flush=True)
+    res = {k: np.array(v) for k, v in out.items() if v}
+    res["L"] = res["L"].reshape(-1, r, r)
+    return res
+
+
+def _free_dataset(prob: BlockedProblem, chains: list[dict[str, np.ndarray]], model: Any) -> Any:
+    """The centred model's free variables, (chain, draw, ...), as an xarray Dataset named and shaped as PyMC's."""
+    import xarray as xr
+
+    layout = prob.layout
+    r = prob.n_random
+    data: dict[str, Any] = {}
+    mu = np.stack([c["mu_std"] for c in chains])
+    data["mu_std"] = (("chain", "draw", "attribute"), mu)
+    if layout.shifted:
+        data["gamma_std"] = (("chain", "draw", "covariate", "shifted_attribute"), np.stack([c["gamma_std"] for c in chains]))
+    L = np.stack([c["L"] for c in chains])
+    if layout.correlated:
+        rows, cols = np.tril_indices(r)
+        data["chol_std"] = (("chain", "draw", "chol_std_dim_0"), L[..., rows, cols])
+    else:
+        data["sd_std"] = (("chain", "draw", "random_attribute"), np.diagonal(L, axis1=-2, axis2=-1).copy())
+    if "eta_std" in chains[0]:
+        data["eta_std"] = (("chain", "draw", "person", "random_attribute"), np.stack([c["eta_std"] for c in chains]))
+    coords = {k: list(v) for k, v in model.coords.items() if k in ("attribute", "covariate", "shifted_attribute",
+                                                               "random_attribute", "person")}
+    return xr.Dataset(data, coords={"chain": np.arange(len(chains)), "draw": np.arange(mu.shape[1]), **coords})
+
+
+def _one_blas_thread() -> Any:
+    """Limit BLAS to one thread while sampling (its threads spin against numba's on small matrices)."""
+    import contextlib
+
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # optional: without it, set OPENBLAS_NUM_THREADS=1
+        return contextlib.nullcontext()
+    return threadpool_limits(1, user_api="blas")
+
+
+def sample_blocked(panel: ChoicePanel, spec: Spec, *, draws: int, tune: int, chains: int, seed: int | None,
+                   keep: list[str], progressbar: bool = False, settings: BlockedSettings = BlockedSettings()) -> Any:
+    """Sample the centred model of ``panel`` under ``spec`` with the blocked sampler; an InferenceData.
+
+    The posterior holds the reported variables in ``keep`` (computed by the PyMC model
+    from the sampled free variables), ``sample_stats`` the per-block acceptance rates
+    and step sizes (``person_accept``, ``person_step_size``, ``location_accept``,
+    ``cov_accept``, ``asis_accept``, ``asis_step_size``) and ``diverging`` (always
+    False: no block integrates a trajectory). Chains run one after another, each
+    person pass in parallel; chain ``c`` uses the ``c``-th child of
+    ``numpy.random.SeedSequence(seed)``.
+    """
+    from dataclasses import replace
+
+    import arviz as az
+    import pymc as pm
+    import xarray as xr
+
+    spec = replace(spec, model=replace(spec.model, parameterization="centred"))
+    prob = blocked_problem(panel, spec)
+    model = build_model(panel, spec)
+    keep_persons = any(v in keep for v in ("person_taste", "person_wtp"))
+    children = np.random.SeedSequence(seed).spawn(chains)
+    results = []
+    with _one_blas_thread():
+        for c, child in enumerate(children):
+            rng = np.random.default_rng(child)
+            results.append(run_chain(prob, rng, draws=draws, tune=tune, settings=settings, keep_persons=keep_persons,
+                                     progress=f"blocked chain {c + 1}/{chains}" if progressbar else None))
+    free = _free_dataset(prob, results, model)
+    names = [v for v in keep if v in model.named_vars and (keep_persons or v not in ("person_taste", "person_wtp"))]
+    post = pm.compute_deterministics(free, var_names=names, model=model, progressbar=False)
+    stats = {k: (("chain", "draw"), np.stack([res[k] for res in results])) for k in STAT_NAMES}
+    stats["diverging"] = (("chain", "draw"), np.zeros((chains, post.sizes["draw"]), dtype=bool))
+    sample_stats = xr.Dataset(stats, coords={"chain": post["chain"], "draw": post["draw"]})
+    return az.InferenceData(posterior=post, sample_stats=sample_stats)

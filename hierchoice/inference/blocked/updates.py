@@ -1,0 +1,413 @@
+"""The blocks of one sweep: persons (MALA), location, covariance, and interweaving (ASIS).
+
+Each update leaves the joint posterior invariant. May import: :mod:`.problem`, :mod:`.kernels`.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from .kernels import (
+    mala_persons,
+    person_loglik_grad,
+    person_loglik_grad_info,
+)
+from .problem import (
+    MALA_TARGET,
+    BlockedProblem,
+    BlockedState,
+    _location_log_prior,
+    _person_information_eta,
+    _sd_log_prior,
+    _solve_lower,
+    chol_log_prior,
+    locations,
+)
+
+
+def _update_persons(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
+                    adapt_rate: float | None, precondition: str) -> None:
+    r"""MALA on every person's eta (one parallel pass); adapts the per-person step sizes while ``adapt_rate``.
+
+    Preconditioner: :math:`\Sigma` (``"population"``), or :math:`(\Sigma^{-1} + \hat F_n)^{-1}`
+    (``"information"``) with :math:`\hat F_n` the person's logit information, recomputed at the
+    current state during warm-up and frozen afterwards, so that in the sampling phase it
+    depends only on :math:`\Sigma` (a conditioning variable of this block) and the data.
+    """
+    beta_fixed = locations(prob, state.mu_free, state.gamma)
+    m = np.ascontiguousarray(beta_fixed[:, prob.rnd])
+    L = np.ascontiguousarray(state.L)
+    Linv = _solve_lower(L, np.eye(prob.n_random))
+    Q = Linv.T @ Linv
+    if precondition == "information":
+        if adapt_rate is not None and (state.info is None or state.sweep % 10 == 0):
+            state.info = _person_information_eta(prob, state)
+        R = np.linalg.cholesky(Q[None, :, :] + state.info)
+    else:
+        R = np.broadcast_to(np.linalg.cholesky(Q), (prob.n_persons,) + Q.shape)
+    R = np.ascontiguousarray(R)
+    xi = rng.standard_normal((steps, prob.n_persons, prob.n_random))
+    log_u = np.log(rng.random((steps, prob.n_persons)))
+    accept = np.empty(prob.n_persons)
+    loglik = np.empty(prob.n_persons)
+    glik = np.empty((prob.n_persons, prob.n_random))
+    cache_ll, cache_g = state.cache if state.cache is not None else (loglik, glik)
+    mala_persons(prob.Dp, prob.maskp, prob.n_others, beta_fixed, state.eta, m, L, R, prob.rnd, prob.logn, prob.sign,
+                 state.h, xi, log_u, state.cache is not None, cache_ll, cache_g, accept, loglik, glik)
+    state.cache = (loglik, glik)
+    if adapt_rate is not None:  # Robbins-Monro on log h towards the target acceptance, person by person
+        state.h *= np.exp(adapt_rate * (accept - MALA_TARGET))
+        np.clip(state.h, 1e-4, 5.0, out=state.h)
+    state.stats["person_accept"] = float(accept.mean())
+    state.stats["person_step_size"] = float(np.median(state.h))
+
+
+def _design_stats(prob: BlockedProblem, eta: np.ndarray) -> dict[str, np.ndarray]:
+    Z = prob.Z
+    return {"n": np.array(eta.shape[0]), "Se": eta.sum(0), "Sz": Z.sum(0), "Sez": eta.T @ Z, "Szz": Z.T @ Z}
+
+
+def _location_conjugate(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator) -> None:
+    r"""Exact draw of (``mu_std``, ``gamma_std``) given eta and Sigma: Bayesian multivariate regression.
+
+    With every taste random, :math:`m_n = A\tilde\mu + E\,\Gamma^\top z_n` (``A`` the linear
+    constant centring, ``E`` placing the shifted columns), the conditional is normal with
+    precision :math:`V_0^{-1} + \sum_n X_n^\top \Sigma^{-1} X_n` and mean
+    precision\ :sup:`-1` :math:`\sum_n X_n^\top \Sigma^{-1}\eta_n`, computed from the sufficient
+    statistics :math:`\sum\eta_n, \sum\eta_n z_n^\top, \sum z_n, \sum z_n z_n^\top`.
+    """
+    K = prob.n_attributes
+    C, S = prob.n_covariates, prob.shifted.size
+    A = np.eye(K)
+    if prob.centre is not None:
+        A = A - prob.centre * prob.lin[None, :]
+    Q = np.linalg.inv(state.L @ state.L.T)  # rnd == all attributes here
+    st = _design_stats(prob, state.eta)
+    E = np.zeros((K, S))
+    E[prob.shifted, np.arange(S)] = 1.0
+    d = K + C * S
+    P = np.zeros((d, d))
+    b = np.zeros(d)
+    P[:K, :K] = st["n"] * A.T @ Q @ A + np.diag(1.0 / prob.mean_sd**2)
+    b[:K] = A.T @ Q @ st["Se"]
+    if C * S:
+        QE = Q @ E
+        P[:K, K:] = np.kron(st["Sz"][None, :], A.T @ QE)
+        P[K:, :K] = P[:K, K:].T
+        P[K:, K:] = np.kron(st["Szz"], E.T @ QE) + np.eye(C * S) / prob.gamma_sd**2
+        b[K:] = (st["Sez"].T @ QE).reshape(-1)
+    R = np.linalg.cholesky(P)
+    mean = np.linalg.solve(R.T, np.linalg.solve(R, b))
+    draw = mean + np.linalg.solve(R.T, rng.standard_normal(d))
+    state.mu_free = draw[:K]
+    state.gamma = draw[K:].reshape(C, S)
+    state.stats["location_accept"] = 1.0
+
+
+def _location_terms(prob: BlockedProblem, state: BlockedState, x: np.ndarray) -> tuple[float, np.ndarray]:
+    r"""Log full conditional of ``x`` = (``mu_std``, ``gamma_std`` flattened) and its gradient.
+
+    Priors, the persons' normal density and, with fixed tastes, the full-data likelihood through
+    the fixed coefficients :math:`\theta_{nk} = \mu_k + \gamma_k^\top z_n`. With
+    :math:`D_{nk} = [\Sigma^{-1}(\eta_n - m_n)]_k` on random and :math:`\partial\ell_n/\partial\beta_{nk}`
+    on fixed columns, :math:`\partial/\partial\mu = \sum_n D_n`, :math:`\partial/\partial\gamma_{ck} =
+    \sum_n z_{nc} D_{nk}` and, through the constant centring :math:`\mu = \tilde\mu - C\bar\beta(\tilde\mu)`,
+    :math:`\partial/\partial\tilde\mu = (I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu))^\top\partial/\partial\mu`.
+    """
+    K = prob.n_attributes
+    mu_free, gamma = x[:K], x[K:].reshape(prob.n_covariates, prob.shifted.size)
+    theta = locations(prob, mu_free, gamma)
+    resid = state.eta - theta[:, prob.rnd]
+    y = _solve_lower(state.L, resid.T)
+    D = np.zeros_like(theta)
+    D[:, prob.rnd] = _solve_lower(state.L, y, trans=1).T
+    lp = _location_log_prior(prob, mu_free, gamma) - 0.5 * float(np.sum(y * y))
+    if prob.fixed.size:
+        beta = theta.copy()
+        beta[:, prob.rnd] = np.where(prob.logn, prob.sign * np.exp(np.where(prob.logn, state.eta, 0.0)), state.eta)
+        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
+        lp += float(ll.sum())
+        D[:, prob.fixed] = g[:, prob.fixed]
+    grad_mu = D.sum(0)
+    if prob.centre is not None:
+        dcoef = np.where(prob.lin, 1.0, prob.coef_sign * np.exp(np.where(prob.lin, 0.0, mu_free)))
+        grad_mu = grad_mu - (prob.centre * dcoef[None, :]).T @ grad_mu
+    grad_mu -= mu_free / prob.mean_sd**2
+    grad_gamma = prob.Z.T @ D[:, prob.shifted] - gamma / prob.gamma_sd**2 if prob.shifted.size else gamma[:0]
+    return lp, np.concatenate([grad_mu, np.ravel(grad_gamma)])
+
+
+def _location_mala(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
+                   adapt_rate: float | None, history: list[np.ndarray] | None) -> None:
+    r"""MALA on (``mu_std``, ``gamma_std``) with the full-data gradient: the general case.
+
+    Preconditioner: the covariance of the warm-up path (adaptive Metropolis, Haario et al.
+    2001), frozen after warm-up; step size adapted towards acceptance 0.574.
+    """
+    K = prob.n_attributes
+    shape = state.gamma.shape
+    x = np.concatenate([state.mu_free, state.gamma.reshape(-1)])
+    d = x.size
+    cov = state.loc_cov if state.loc_cov is not None else np.eye(d) * 0.01
+    C = np.linalg.cholesky(cov + 1e-12 * np.eye(d))
+    h = state.loc_scale
+    lp, grad = _location_terms(prob, state, x)
+    acc = 0.0
+    for _ in range(steps):
+        mean_f = x + 0.5 * h * h * (cov @ grad)
+        prop = mean_f + h * (C @ rng.standard_normal(d))
+        lp_p, grad_p = _location_terms(prob, state, prop)
+        a = 0.0
+        if np.isfinite(lp_p):
+            mean_b = prop + 0.5 * h * h * (cov @ grad_p)
+            log_q_f = -0.5 * np.sum(_solve_lower(C, (prop - mean_f)[:, None]) ** 2) / h**2
+            log_q_b = -0.5 * np.sum(_solve_lower(C, (x - mean_b)[:, None]) ** 2) / h**2
+            log_a = lp_p - lp + log_q_b - log_q_f
+            a = math.exp(min(0.0, log_a)) if np.isfinite(log_a) else 0.0
+        u = rng.random()
+        if u < a:
+            x, lp, grad = prop, lp_p, grad_p
+        acc += a
+        if adapt_rate is not None:
+            h = float(np.clip(h * math.exp(adapt_rate * (a - MALA_TARGET)), 1e-4, 3.0))
+    state.mu_free, state.gamma = x[:K].copy(), x[K:].reshape(shape).copy()
+    state.loc_scale = h
+    state.stats["location_accept"] = acc / steps
+    if prob.fixed.size:
+        state.cache = None  # the fixed coefficients may have moved
+    if history is not None:  # warm-up: preconditioner from the second half of the path so far
+        history.append(x.copy())
+        if len(history) >= 20 and len(history) % 10 == 0:
+            if state.loc_cov is None:
+                state.loc_scale = 1.0  # the step size was tuned to the provisional preconditioner
+            state.loc_cov = np.cov(np.array(history[len(history) // 2:]).T).reshape(d, d) + 1e-10 * np.eye(d)
+
+
+def _update_covariance(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int = 2) -> None:
+    r"""Independence Metropolis–Hastings for Sigma with the conjugate proposal, corrected to the model's prior.
+
+    Proposal: :math:`\Sigma^* \sim IW(\Psi_0 + S, \nu_0 + N)` (correlated) or
+    :math:`\sigma_k^{*2} \sim IG(a_0 + N/2, b_0 + S_{kk}/2)` (independent), the exact
+    conditional under a stand-in prior :math:`p_0`; with the model's prior :math:`p` the
+    acceptance ratio is :math:`\frac{p(\Sigma^*)/p_0(\Sigma^*)}{p(\Sigma)/p_0(\Sigma)}`, where
+    :math:`p` on :math:`\Sigma` is the density on ``L`` divided by the Jacobian
+    :math:`2^n\prod_i L_{ii}^{\,n-i}` of :math:`L \mapsto LL^\top`. The likelihood cancels, so the
+    cost is that of the scatter matrix :math:`S = \sum_n (\eta_n - m_n)(\eta_n - m_n)^\top`.
+    """
+    theta = locations(prob, state.mu_free, state.gamma)
+    resid = state.eta - theta[:, prob.rnd]
+    n, r = resid.shape
+    S = resid.T @ resid
+    acc = 0.0
+    if prob.layout.correlated:
+        from scipy.stats import invwishart
+
+        nu0 = r + 2.0
+        psi0 = np.diag(prob.sd_sd**2) * (nu0 - r - 1.0) * 0.25
+
+        def log_ratio(L: np.ndarray) -> float:  # log p(Sigma) - log p0(Sigma)
+            diag = np.diag(L)
+            logdet = 2.0 * np.sum(np.log(diag))
+            jac = float(np.sum((r - np.arange(r)) * np.log(diag)))
+            Linv = _solve_lower(L, np.eye(r))
+            tr = float(np.sum((Linv @ psi0) * Linv))  # tr(psi0 Sigma^-1) = tr(Linv psi0 Linv^T)
+            lp0 = -0.5 * (nu0 + r + 1.0) * logdet - 0.5 * tr
+            return chol_log_prior(prob, L) - jac - lp0
+
+        cur = log_ratio(state.L)
+        for _ in range(steps):
+            sigma = invwishart.rvs(df=nu0 + n, scale=psi0 + S, random_state=rng)
+            L_new = np.linalg.cholesky(np.atleast_2d(sigma))
+            new = log_ratio(L_new)
+            a = min(1.0, math.exp(min(0.0, new - cur)))
+            acc += a
+            if rng.random() < a:
+                state.L, cur = L_new, new
+    else:
+        a0 = 1.0
+        b0 = 0.25 * prob.sd_sd**2
+        sd = np.diag(state.L).copy()
+        for _ in range(steps):
+            v = (b0 + 0.5 * np.diag(S)) / rng.gamma(a0 + 0.5 * n, 1.0, size=r)
+            sd_new = np.sqrt(v)
+            # per SD: log HalfNormal(sd) - log(2 sd) [the density of v = sd^2] - log IG0(v)
+            def ratio(s: np.ndarray) -> np.ndarray:
+                return -0.5 * (s / prob.sd_sd) ** 2 - np.log(s) + (a0 + 1.0) * 2 * np.log(s) + b0 / s**2
+
+            log_a = ratio(sd_new) - ratio(sd)
+            take = np.log(rng.random(r)) < log_a
+            acc += float(np.mean(np.minimum(1.0, np.exp(np.minimum(0.0, log_a)))))
+            sd = np.where(take, sd_new, sd)
+        state.L = np.diag(sd)
+    state.stats["cov_accept"] = acc / steps
+
+
+def _cov_prior_grad(prob: BlockedProblem, L: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+    r"""Log prior of ``L`` (up to a constant), its gradient and a positive curvature, on the sampled entries.
+
+    Correlated (PyMC's ``LKJCholeskyCov`` density, :func:`chol_log_prior`), with
+    :math:`c_i = 2\eta - 2 + n - i` and :math:`\sigma_i = \lVert L_{i\cdot}\rVert`:
+
+    .. math:: \log p(L) = \sum_i \Big[-\frac{\sigma_i^2}{2s_i^2} + c_i \log L_{ii} - (c_i + i)\log\sigma_i\Big],
+              \quad \frac{\partial \log p}{\partial L_{ij}} = -\frac{L_{ij}}{s_i^2}
+              + [i = j]\frac{c_i}{L_{ii}} - (c_i + i)\frac{L_{ij}}{\sigma_i^2}.
+
+    Independent: HalfNormal SDs on the diagonal. The curvature (``1/s_i^2`` plus
+    ``c_i/L_ii^2`` on the diagonal) only shapes the proposal.
+    """
+    r = prob.n_random
+    rows, cols = _entries(prob)
+    s2 = prob.sd_sd[rows] ** 2
+    if not prob.layout.correlated:
+        sd = np.diag(L)
+        return _sd_log_prior(prob, sd), -sd / prob.sd_sd**2, 1.0 / prob.sd_sd**2
+    lp = chol_log_prior(prob, L)
+    sd2 = np.sum(L * L, axis=1)
+    c = 2 * prob.lkj_eta - 2 + r - np.arange(r)
+    vals = L[rows, cols]
+    diag = rows == cols
+    grad = -vals / s2 - (c + np.arange(r))[rows] * vals / sd2[rows]
+    grad[diag] += c / np.diag(L)
+    curv = 1.0 / s2
+    curv[diag] += c / np.diag(L) ** 2
+    return lp, grad, curv
+
+
+def _entries(prob: BlockedProblem) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column of each sampled entry of ``L``: the lower triangle (correlated) or the diagonal."""
+    r = prob.n_random
+    return np.tril_indices(r) if prob.layout.correlated else (np.arange(r), np.arange(r))
+
+
+def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.ndarray, movable: np.ndarray,
+                metric: bool = True, cached: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[Any, ...]:
+    r"""Log conditional of ``x`` = (entries of ``L``, movable means) given ``e``, its gradient and a metric.
+
+    Non-centred: :math:`\eta_n = m_n + L e_n`. The gradient of the likelihood is
+    :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
+    :math:`\partial/\partial\mu_a = \sum_n \tilde g_{na}` with :math:`\tilde g_n = J_n\nabla_\beta\ell_n`;
+    the metric is the expected information
+    :math:`G_{(ab),(cd)} = \sum_n \tilde F_{n,ac}\, e_{nb} e_{nd}` (and likewise for the means) plus
+    the prior's curvature (Girolami & Calderhead 2011, simplified manifold MALA).
+    Returns ``(log density, gradient, metric or None, eta, (loglik, eta-gradient) per person)``; ``-inf``
+    outside the support. ``cached``: the per-person log-likelihoods and eta-gradients at ``x``, to skip
+    the likelihood pass (only without the metric).
+    """
+    r = prob.n_random
+    rows, cols = _entries(prob)
+    n_l = rows.size
+    L = np.zeros((r, r))
+    L[rows, cols] = x[:n_l]
+    if np.any(np.diag(L) <= 0):
+        return -np.inf, x, None, state.eta, None
+    mu_free = state.mu_free.copy()
+    mu_free[prob.rnd[movable]] = x[n_l:]
+    theta = locations(prob, mu_free, state.gamma)
+    eta = theta[:, prob.rnd] + e @ L.T
+    beta = theta
+    beta[:, prob.rnd] = np.where(prob.logn, prob.sign * np.exp(np.where(prob.logn, eta, 0.0)), eta)
+    J = np.where(prob.logn, beta[:, prob.rnd], 1.0)
+    if metric:
+        ll, g, F = person_loglik_grad_info(prob.Dp, prob.maskp, prob.n_others, beta)
+        gt = g[:, prob.rnd] * J
+        Ft = F[:, prob.rnd][:, :, prob.rnd] * J[:, :, None] * J[:, None, :]
+    elif cached is not None:
+        ll, gt = cached
+    else:
+        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
+        gt = g[:, prob.rnd] * J
+    lp_l, grad_l, curv_l = _cov_prior_grad(prob, L)
+    lp = float(ll.sum()) + lp_l + _location_log_prior(prob, mu_free, state.gamma)
+    n = e.shape[0]
+    GL = gt.T @ e
+    grad = np.concatenate([GL[rows, cols] + grad_l, gt[:, movable].sum(0) - x[n_l:] / prob.mean_sd[prob.rnd[movable]] ** 2])
+    if not metric:
+        return lp, grad, None, eta, (ll, gt)
+    M = (Ft.reshape(n, r * r).T @ (e[:, :, None] * e[:, None, :]).reshape(n, r * r)).reshape(r, r, r, r)  # [a,c,b,d]
+    G = np.zeros((x.size, x.size))
+    G[:n_l, :n_l] = M[rows[:, None], rows[None, :], cols[:, None], cols[None, :]]
+    if movable.size:
+        Mmu = (Ft.reshape(n, r * r).T @ e).reshape(r, r, r)  # [a, c, b] = sum_n Ft[n,a,c] e[n,b]
+        G[:n_l, n_l:] = Mmu[rows[:, None], movable[None, :], cols[:, None]]
+        G[n_l:, :n_l] = G[:n_l, n_l:].T
+        G[n_l:, n_l:] = Ft.sum(0)[np.ix_(movable, movable)] + np.diag(1 / prob.mean_sd[prob.rnd[movable]] ** 2)
+    G[np.arange(n_l), np.arange(n_l)] += curv_l
+    G += 1e-9 * np.eye(x.size) * max(1.0, float(np.abs(np.diag(G)).max()))
+    return lp, grad, G, eta, (ll, gt)
+
+
+def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
+          adapt_rate: float | None) -> None:
+    r"""Interweaving: simplified manifold MALA on ``L`` (and the random means) in the non-centred form.
+
+    With :math:`e_n = L^{-1}(\eta_n - m_n)` fixed (standard normal a priori, free of
+    :math:`L` and :math:`\mu`), the conditional of :math:`(L, \tilde\mu)` is the prior times the
+    full-data likelihood of :math:`\eta_n = m_n + L e_n` (Yu & Meng 2011, JCGS 20: the
+    ancillary half of the interweaving). Proposal
+    :math:`x' \sim N(x + \tfrac{h^2}{2}G(x)^{-1}\nabla\log\pi(x),\ h^2 G(x)^{-1})` with
+    :math:`G` the expected information (:func:`_asis_terms`), accepted with the
+    Metropolis–Hastings ratio that includes :math:`G` at both ends (Girolami & Calderhead 2011).
+    The means move only without constant centring (then :math:`\mu = \tilde\mu`).
+    """
+    r = prob.n_random
+    rows, cols = _entries(prob)
+    theta = locations(prob, state.mu_free, state.gamma)
+    e = _solve_lower(state.L, (state.eta - theta[:, prob.rnd]).T).T  # (person, random)
+    movable = np.arange(r) if prob.centre is None else np.arange(0)
+    x = np.concatenate([state.L[rows, cols], state.mu_free[prob.rnd[movable]]])
+    h = state.asis_scale
+    # warm-up: the metric at both ends (simplified manifold MALA); sampling: the metric frozen at the end of
+    # warm-up (a fixed preconditioner), so each step needs only the likelihood and its gradient
+    frozen = adapt_rate is None and state.asis_metric is not None
+    if frozen:
+        lp, grad, _, eta, lik = _asis_terms(prob, state, e, x, movable, metric=False, cached=state.cache)
+        C = state.asis_metric
+    else:
+        lp, grad, G, eta, lik = _asis_terms(prob, state, e, x, movable)
+        C = np.linalg.cholesky(G)
+    acc = 0.0
+    for _ in range(steps):
+        mean_f = x + 0.5 * h * h * _chol_solve(C, grad)
+        prop = mean_f + h * _solve_lower(C, rng.standard_normal(x.size)[:, None], trans=1)[:, 0]
+        lp_p, grad_p, G_p, eta_p, lik_p = _asis_terms(prob, state, e, prop, movable, metric=not frozen)
+        a = 0.0
+        if np.isfinite(lp_p):
+            C_p = C if frozen else np.linalg.cholesky(G_p)
+            mean_b = prop + 0.5 * h * h * _chol_solve(C_p, grad_p)
+            log_q_f = np.sum(np.log(np.diag(C))) - 0.5 * np.sum((C.T @ (prop - mean_f)) ** 2) / h**2
+            log_q_b = np.sum(np.log(np.diag(C_p))) - 0.5 * np.sum((C_p.T @ (x - mean_b)) ** 2) / h**2
+            log_a = lp_p - lp + log_q_b - log_q_f
+            a = math.exp(min(0.0, log_a)) if np.isfinite(log_a) else 0.0
+            if rng.random() < a:
+                x, lp, grad, C, eta, lik = prop, lp_p, grad_p, C_p, eta_p, lik_p
+        else:
+            rng.random()  # keep the stream aligned whether or not the proposal left the support
+        acc += a
+        if adapt_rate is not None:
+            h = float(np.clip(h * math.exp(adapt_rate * (a - MALA_TARGET)), 1e-3, 2.0))
+    if adapt_rate is not None:
+        state.asis_metric = C
+    state.cache = lik
+    L = np.zeros((r, r))
+    L[rows, cols] = x[: rows.size]
+    state.L = L
+    state.mu_free = state.mu_free.copy()
+    state.mu_free[prob.rnd[movable]] = x[rows.size:]
+    state.eta = np.ascontiguousarray(eta)
+    state.asis_scale = h
+    state.stats["asis_accept"] = acc / max(steps, 1)
+    state.stats["asis_step_size"] = h
+
+
+def _chol_solve(C: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve ``C C^T x = b`` for lower-triangular ``C``."""
+    y = _solve_lower(C, b[:, None])
+    return _solve_lower(C, y, trans=1)[:, 0]
+
+
+# --------------------------------------------------------------------------- chains
+
+
