@@ -317,6 +317,8 @@ def test_rhat_is_shown_with_three_decimals_and_shares_are_never_rounded_to_zero(
     assert checks.format_check_value("rhat", 1.012, RHAT_MAX) == "1.012"
     assert checks.format_check_value("rhat", 1.0099, RHAT_MAX) == "1.0099"
     assert checks.format_check_value("ess_bulk", 1301.4, ESS_MIN) == "1,301"
+    assert checks.format_check_value("ess_tail", 99.6, ESS_MIN) == "99.6"  # fails below 100: never shown as 100
+    assert checks.format_check_value("rhat", 1.04996, RHAT_MAX) == "1.04996"  # a warning, not the 1.05 fail
     assert checks.format_check_value("rhat", None) == "n/a"
     assert checks.count_share(1, 1760) == "1 of 1,760 (0.057 %)"
     assert checks.count_share(0, 1760) == "0 of 1,760 (0 %)"

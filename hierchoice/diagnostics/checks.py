@@ -136,6 +136,9 @@ def _grade_lower(value: float, ok: float, bad: float) -> str:
 #: Decimals a check's value is first shown with (R-hat to three: 1.012 must not read as 1.01).
 _DECIMALS = {"rhat": 3, "person_rhat": 3, "ebfmi": 2, "lognormal_sd": 3}
 _WHOLE = ("ess_bulk", "ess_tail", "person_ess_bulk", "divergences")
+#: The warn/fail line of the checks that have one (a shown value must not cross it either).
+_FAIL_LINE = {"rhat": RHAT_FAIL, "person_rhat": RHAT_FAIL, "ess_bulk": ESS_FAIL, "ess_tail": ESS_FAIL,
+              "person_ess_bulk": ESS_FAIL}
 
 
 def format_check_value(check: str, value: Any, threshold: Any = None) -> str:
@@ -143,7 +146,8 @@ def format_check_value(check: str, value: Any, threshold: Any = None) -> str:
 
     R-hat gets three decimals, ESS and divergence counts none, others about four significant digits; when
     rounding would put the shown number on the threshold or across it (1.0099 shown as "1.010" next to the
-    rule "< 1.01"), decimals are added until it does not. ``"n/a"`` for a missing value.
+    rule "< 1.01"), or onto or across the fail line (ESS 99.6 shown as "100" next to "fail below 100"),
+    decimals are added until it does not. ``"n/a"`` for a missing value.
     """
     try:
         v = float(value)
@@ -161,11 +165,12 @@ def format_check_value(check: str, value: Any, threshold: Any = None) -> str:
         first = _DECIMALS[check]
     else:
         first = max(0, 3 - int(math.floor(math.log10(abs(v))))) if v != 0 else 0
+    lines = [x for x in (t, _FAIL_LINE.get(check, math.nan)) if math.isfinite(x)]  # the pass and the fail line
     text = ""
     for decimals in range(first, first + 8):
         text = f"{v:,.{decimals}f}"
         shown = float(text.replace(",", ""))
-        if not math.isfinite(t) or np.sign(shown - t) == np.sign(v - t):
+        if all(np.sign(shown - x) == np.sign(v - x) for x in lines):
             break
     return text
 
