@@ -1,6 +1,6 @@
 """Import PyTensor (and with it PyMC's backend) once, without its BLAS start-up warning.
 
-PyTensor warns at import when it links BLAS through NumPy (pip installs); the message is about speed, not
+PyTensor warns (at import, or when it first looks for BLAS) when it links BLAS through NumPy (pip installs); the message is about speed, not
 correctness, and would be the first thing users see. The warning is silenced for that one import only: the
 package sets no global warning filter.
 """
@@ -21,5 +21,7 @@ def load_backend() -> None:
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS installation",
                                 category=UserWarning)
-        import pytensor  # noqa: F401
+        import pytensor
         import pytensor.tensor  # noqa: F401
+
+        pytensor.config.blas__ldflags  # noqa: B018  (detected lazily, with the warning, on first use: do it here)

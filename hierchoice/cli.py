@@ -30,7 +30,7 @@ def _fit_method(args: argparse.Namespace) -> str:
     """``--method``, with ``--approximate`` as the older spelling of ``--method advi``."""
     if args.approximate and args.method not in (None, "advi"):
         raise SpecError(f"--approximate means --method advi; it cannot be combined with --method {args.method}.")
-    return args.method or ("advi" if args.approximate else "nuts")
+    return args.method or ("advi" if args.approximate else None)  # None: the spec's sampling.method
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
@@ -212,8 +212,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--approximate", action="store_true",
                    help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
     p.add_argument("--method", choices=["nuts", "blocked", "advi"], default=None,
-                   help="nuts (default): NUTS on the whole model; blocked: the exact blocked sampler for large "
-                        "panels (10,000+ persons); advi: approximate, intervals too narrow (as --approximate)")
+                   help="overrides sampling.method: nuts (the default) samples the whole model with NUTS; blocked: the "
+                        "exact blocked sampler for large panels (10,000+ persons); advi: approximate, intervals too "
+                        "narrow (as --approximate)")
     p.add_argument("--person-batch", type=whole_number_option(1), default=None, metavar="N",
                    help="with --approximate: persons per random batch (default: 500 when the panel has over "
                         "1000 persons, else all)")

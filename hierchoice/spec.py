@@ -61,6 +61,7 @@ TASK_SCOPES = ("person", "global")
 INVALID_TASK_POLICIES = ("error", "drop")
 PARAMETERIZATIONS = ("auto", "noncentred", "centred")
 BACKENDS = ("auto", "pymc", "nutpie", "numpyro")
+METHODS = ("nuts", "blocked", "advi")
 
 
 @dataclass(frozen=True)
@@ -365,7 +366,7 @@ class ModelOptions:
 
 @dataclass(frozen=True)
 class SamplingOptions:
-    """NUTS settings; command-line options override them."""
+    """Sampler settings; command-line options override them."""
 
     chains: int = 2
     draws: int = 1000
@@ -376,13 +377,14 @@ class SamplingOptions:
     store_person_draws: bool = True
     cores: int | None = None
     mass_matrix: str = "diagonal"
+    method: str = "nuts"
 
     @classmethod
     def from_dict(cls, table: Mapping[str, Any]) -> SamplingOptions:
         _check_keys(
             table,
             {"chains", "draws", "tune", "target_accept", "seed", "backend", "store_person_draws", "cores",
-             "mass_matrix"},
+             "mass_matrix", "method"},
             "sampling",
         )
         ta = table.get("target_accept", 0.85)
@@ -400,6 +402,7 @@ class SamplingOptions:
             cores=None if cores is None else _positive_int(cores, "sampling.cores"),
             mass_matrix=_choice(table.get("mass_matrix", "diagonal"), ("diagonal", "low_rank"),
                                 "sampling.mass_matrix"),
+            method=_choice(table.get("method", "nuts"), METHODS, "sampling.method"),
         )
 
 

@@ -163,7 +163,7 @@ def fit(
     target_accept: float | None = None,
     cores: int | None = None,
     progressbar: bool = True,
-    method: str = "nuts",
+    method: str | None = None,
     advi_iterations: int = 15_000,
     person_batch: int | str | None = "auto",
 ) -> ChoiceFit:
@@ -180,7 +180,8 @@ def fit(
     draws, tune, chains, seed, backend, target_accept, cores : optional
         See ``docs/spec.md`` ([sampling]).
     progressbar : bool, default True
-    method : {"nuts", "advi", "blocked"}, default "nuts"
+    method : {"nuts", "blocked", "advi"}, optional
+        Defaults to the spec's ``sampling.method`` (``"nuts"`` unless set).
         ``"blocked"`` samples the centred model exactly with the blocked Gibbs-style
         sampler of :mod:`hierchoice.inference.blocked` (vectorised per-person MALA,
         conjugate and sufficient-statistic population updates, interweaving): for
@@ -207,12 +208,14 @@ def fit(
     -------
     ChoiceFit
     """
+    if method is None:
+        method = (panel.spec if spec is None else load_spec(spec)).sampling.method
     if method not in ("nuts", "advi", "blocked"):
         raise SpecError(f"method must be 'nuts', 'advi' or 'blocked', got {method!r}.")
     batch = _person_batch(person_batch, panel.n_persons, method)
     spec = panel.spec if spec is None else load_spec(spec)
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
-                              target_accept=target_accept, cores=cores).for_method(method)
+                              target_accept=target_accept, cores=cores, method=method).for_method(method)
     if method == "blocked":
         return _fit_blocked(panel, spec, progressbar=progressbar)
     s = spec.sampling
@@ -280,7 +283,8 @@ def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool) -> Choice
     wall = time.perf_counter() - t0
     idata = _tidy_idata(idata, panel, keep)
     info = {"backend": "blocked", "draws": s.draws, "tune": s.tune, "chains": s.chains, "seed": s.seed,
-            "wall_seconds": round(wall, 3), "approximate": False, "method": METHOD_NAME}
+            "wall_seconds": round(wall, 3), "approximate": False, "method": METHOD_NAME,
+            "created_at": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")}
     result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
     if result.has_person_draws:
         add_log_likelihood(result)

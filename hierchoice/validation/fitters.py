@@ -83,6 +83,7 @@ class NutsFitter:
     chains: int = 2
     backend: str = "pymc"
     target_accept: float | None = None
+    method: str = "nuts"
 
     @classmethod
     def from_spec(cls, spec: Spec) -> NutsFitter:
@@ -93,7 +94,8 @@ class NutsFitter:
         """
         s = spec.sampling
         backend = "pymc" if s.backend == "auto" else s.backend
-        return cls(draws=s.draws, tune=s.tune, chains=s.chains, backend=backend, target_accept=s.target_accept)
+        return cls(draws=s.draws, tune=s.tune, chains=s.chains, backend=backend, target_accept=s.target_accept,
+                   method=s.method)
 
     def __call__(self, panel: ChoicePanel, spec: Spec, seed: int) -> xr.Dataset:
         from ..inference.sampling import fit
@@ -101,7 +103,8 @@ class NutsFitter:
         spec = spec.with_sampling(store_person_draws=False)
         with _quiet_sampler_logs():
             result = fit(panel, spec, draws=self.draws, tune=self.tune, chains=self.chains, seed=seed,
-                         backend=self.backend, target_accept=self.target_accept, cores=1, progressbar=False)
+                         backend=self.backend, target_accept=self.target_accept, cores=1, progressbar=False,
+                         method=self.method)
         post = result.posterior
         stats = result.idata.sample_stats if "sample_stats" in result.idata.groups() else None
         if stats is not None and "diverging" in stats:

@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from ..._backend import load_backend
 from ...data.panel import ChoicePanel
 from ...model.build import build_model
 from ...spec import Spec
@@ -141,6 +142,7 @@ def sample_blocked(panel: ChoicePanel, spec: Spec, *, draws: int, tune: int, cha
     from dataclasses import replace
 
     import arviz as az
+    load_backend()
     import pymc as pm
     import xarray as xr
 
