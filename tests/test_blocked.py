@@ -497,3 +497,21 @@ def test_cli_fit_method_blocked(ferry, tmp_path) -> None:  # type: ignore[no-unt
     assert main(args + ["--out", str(tmp_path / "out"), "--method", "blocked"]) == 0
     assert (tmp_path / "out" / "posterior.nc").exists() or any((tmp_path / "out").iterdir())
     assert main(args + ["--out", str(tmp_path / "out2"), "--method", "blocked", "--approximate"]) != 0
+
+
+def test_a_blocked_fit_is_graded_on_its_own_statistics():
+    # the blocked sampler has no trajectories: E-BFMI and tree depth do not apply, block acceptance does
+    from hierchoice.diagnostics.checks import BLOCK_ACCEPT_MIN, blocked_sampler_checks, sampler_checks
+
+    sim = hc.ferry_scenario(30, n_tasks=6, seed=4, correlated=False)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    result = hc.fit(panel, method="blocked", draws=60, tune=60, chains=2, seed=3, progressbar=False)
+    checks = sampler_checks(result.idata)
+    assert {c.check for c in checks} == {"block_acceptance"}
+    assert {c.subject for c in checks} >= {"person"}
+    assert all(c.verdict == "pass" for c in checks), [(c.subject, c.value) for c in checks]
+    # negative control: a block that never accepts is flagged
+    stats = result.idata.sample_stats.copy()
+    stats["person_accept"] = stats["person_accept"] * 0.0
+    stuck = [c for c in blocked_sampler_checks(stats) if c.subject == "person"][0]
+    assert stuck.verdict == "warn" and stuck.value < BLOCK_ACCEPT_MIN

@@ -66,6 +66,8 @@ __all__ = [
     "ESS_MIN",
     "ESS_FAIL",
     "EBFMI_MIN",
+    "BLOCK_ACCEPT_MIN",
+    "blocked_sampler_checks",
     "MAX_TREE_DEPTH",
     "LOG_SD_COLLAPSED",
     "LOG_SD_LARGE",
@@ -361,6 +363,8 @@ def sampler_checks(idata: Any) -> list[Check]:
                       "The fit stores no sampler statistics: divergences, E-BFMI and tree depth cannot be checked. "
                       "Refit with an MCMC backend that records them.", "")]
     stats = idata.sample_stats
+    if "person_accept" in stats:  # the blocked sampler: no trajectories, so no NUTS statistics to grade
+        return blocked_sampler_checks(stats)
     out: list[Check] = []
 
     if "diverging" in stats:
@@ -429,6 +433,32 @@ def sampler_checks(idata: Any) -> list[Check]:
 
 
 # --------------------------------------------------------------------------- person tastes
+
+
+#: Lowest mean acceptance of a Metropolis block of the blocked sampler before it counts as stuck (common practice).
+BLOCK_ACCEPT_MIN = 0.1
+
+
+def blocked_sampler_checks(stats: Any) -> list[Check]:
+    """Acceptance of each Metropolis block of the blocked sampler (``*_accept`` in ``sample_stats``).
+
+    The blocked sampler integrates no trajectory, so divergences, E-BFMI and tree depth do not apply; a block
+    whose proposals are almost never accepted leaves its parameters still, which R-hat and ESS then show as well.
+    """
+    out: list[Check] = []
+    for name in sorted(n for n in stats.data_vars if str(n).endswith("_accept")):
+        rates = np.nanmean(_post_warmup(stats[name], stats), axis=1)
+        v = float(np.nanmin(rates)) if rates.size else math.nan
+        verdict = "warn" if not np.isfinite(v) or v < BLOCK_ACCEPT_MIN else "pass"
+        out.append(Check(
+            "block_acceptance", str(name).removesuffix("_accept"), v, BLOCK_ACCEPT_MIN,
+            f"mean acceptance >= {BLOCK_ACCEPT_MIN} in every chain", verdict,
+            "" if verdict == "pass" else
+            (f"The {name.removesuffix('_accept')} block of the blocked sampler accepted {v:.1%} of its proposals "
+             "(lowest chain): its parameters barely move. Run longer warm-up (--tune) or use NUTS "
+             "(sampling.method = \"nuts\") on a panel it can handle."),
+            _REF_COMMON, "per chain: " + ", ".join(f"{r:.2f}" for r in rates)))
+    return out
 
 
 def person_checks(idata: Any) -> list[Check]:
