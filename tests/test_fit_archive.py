@@ -7,8 +7,8 @@ import pytest
 
 import hierchoice as hc
 from hierchoice._io import MARKER
-from hierchoice.inference.results import load_fit, save_fit
 from hierchoice.cli import main
+from hierchoice.inference.results import load_fit, save_fit
 
 
 @pytest.fixture(scope="module")
@@ -49,7 +49,7 @@ def test_log_likelihood_matches_person_tastes(small):
 def test_archive_round_trip(small, tmp_path):
     _, panel, result = small
     out = save_fit(result, tmp_path / "fit")
-    assert sorted(os.listdir(out)) == sorted([MARKER, "fit.log", "population.csv", "posterior.nc", "spec.toml"])
+    assert sorted(os.listdir(out)) == sorted([MARKER, "fit.log", "posterior.nc", "spec.toml"])
     again = load_fit(out)
     np.testing.assert_array_equal(again.posterior["person_taste"].values, result.posterior["person_taste"].values)
     np.testing.assert_array_equal(again.panel.X, panel.X)
@@ -63,16 +63,16 @@ def test_archive_round_trip(small, tmp_path):
 def test_interrupted_write_keeps_the_earlier_folder(small, tmp_path, monkeypatch):
     _, _, result = small
     out = save_fit(result, tmp_path / "fit")
-    before = (out / "population.csv").read_text()
+    before = (out / "fit.log").read_text()
     import hierchoice.inference.results as archive
 
     def boom(*args, **kwargs):
         raise RuntimeError("disk full")
 
-    monkeypatch.setattr(archive, "population_summary", boom)
+    monkeypatch.setattr(archive, "_fit_log", boom)
     with pytest.raises(RuntimeError):
         save_fit(result, out)
-    assert (out / "population.csv").read_text() == before
+    assert (out / "fit.log").read_text() == before
     assert [p.name for p in tmp_path.iterdir()] == ["fit"]  # no half-written sibling left behind
 
 

@@ -11,9 +11,6 @@ A results folder holds
     log_likelihood is not stored when person draws are (it is rebuilt from them
     by :func:`hierchoice.diagnostics.loo.task_loo`); its attributes carry the
     spec (TOML), the data summary, the panel's terms and the fit info (JSON).
-``population.csv``
-    Population parameters with 90 % equal-tailed intervals and the implied
-    moments of each taste distribution.
 ``spec.toml``
     The spec the fit used (sampling options as run).
 ``fit.log``
@@ -212,14 +209,17 @@ def save_fit(result: ChoiceFit, out: str | Path, *, overwrite: bool = True, extr
         for group in idata.groups():
             getattr(idata, group).attrs.update(attrs if group == "posterior" else {})
         idata.to_netcdf(str(tmp / POSTERIOR_FILE), engine="h5netcdf")
-        population_summary(result).to_csv(tmp / "population.csv")
         (tmp / "spec.toml").write_text(result.spec.to_toml(), encoding="utf-8")
-        lines = [f"{k}: {v}" for k, v in result.info.items()]
-        lines.append(f"persons: {result.panel.n_persons}, tasks: {result.panel.n_tasks}")
-        (tmp / "fit.log").write_text("\n".join(lines) + "\n", encoding="utf-8")
+        (tmp / "fit.log").write_text(_fit_log(result), encoding="utf-8")
         for name, text in (extra or {}).items():
             (tmp / name).write_text(str(text), encoding="utf-8")
     return out
+
+
+def _fit_log(result: ChoiceFit) -> str:
+    lines = [f"{k}: {v}" for k, v in result.info.items()]
+    lines.append(f"persons: {result.panel.n_persons}, tasks: {result.panel.n_tasks}")
+    return "\n".join(lines) + "\n"
 
 
 def load_fit(folder: str | Path) -> ChoiceFit:

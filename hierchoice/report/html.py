@@ -220,8 +220,6 @@ _FILE_NOTES = {
     "diagnostics.json": "every convergence and predictive check (hierchoice check)",
     REPORT_FILE: "this report",
     "population_tastes.csv": "population tastes: every quantity with HDI and equal-tailed intervals",
-    "population.csv": "the model's population parameters as fitted (hierchoice fit; population_tastes.csv is "
-                      "the table to read)",
     "person_tastes.csv": "each respondent's tastes", "wtp.csv": "willingness to pay across people",
     "person_wtp.csv": "each respondent's willingness to pay", "shares.csv": "the market scenario's shares",
     "holdout.json": "held-out validation (hierchoice holdout)", "holdout_tasks.csv": "each held-out task's score",
