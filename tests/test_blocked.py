@@ -515,3 +515,15 @@ def test_a_blocked_fit_is_graded_on_its_own_statistics():
     stats["person_accept"] = stats["person_accept"] * 0.0
     stuck = [c for c in blocked_sampler_checks(stats) if c.subject == "person"][0]
     assert stuck.verdict == "warn" and stuck.value < BLOCK_ACCEPT_MIN
+
+
+def test_a_blocked_fit_without_person_draws_reports_the_same_population():
+    # store_person_draws = false (as the calibration fitter sets it) must give the same population draws
+    sim = hc.ferry_scenario(30, n_tasks=6, seed=4, correlated=True)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    kw = dict(method="blocked", draws=70, tune=40, chains=1, seed=8, progressbar=False)
+    full = hc.fit(panel, **kw)
+    bare = hc.fit(panel, panel.spec.with_sampling(store_person_draws=False), **kw)
+    assert not bare.has_person_draws and list(bare.posterior["draw"].values) == list(range(70))
+    for name in ("taste_mean", "taste_sd", "taste_corr"):
+        np.testing.assert_allclose(bare.posterior[name].values, full.posterior[name].values, rtol=1e-12)

@@ -116,6 +116,26 @@ def _free_dataset(prob: BlockedProblem, chains: list[dict[str, np.ndarray]], mod
     return xr.Dataset(data, coords={"chain": np.arange(len(chains)), "draw": np.arange(mu.shape[1]), **coords})
 
 
+def _deterministics(free: Any, names: list[str], model: Any, prob: BlockedProblem, chunk: int = 50) -> Any:
+    """The model's reported quantities from draws of its free variables (:func:`pymc.compute_deterministics`).
+
+    PyMC's function wants every free variable. Without kept person draws the population quantities do not depend
+    on the persons' latent tastes, so zeros stand in for them, a few draws at a time (memory stays small).
+    """
+    import pymc as pm
+    import xarray as xr
+
+    if "eta_std" in free or "eta_std" not in model.named_vars:
+        return pm.compute_deterministics(free, var_names=names, model=model, progressbar=False)
+    parts = []
+    for start in range(0, free.sizes["draw"], chunk):
+        block = free.isel(draw=slice(start, start + chunk))
+        zeros = np.zeros((block.sizes["chain"], block.sizes["draw"], prob.n_persons, prob.n_random))
+        block = block.assign(eta_std=(("chain", "draw", "person", "random_attribute"), zeros))
+        parts.append(pm.compute_deterministics(block, var_names=names, model=model, progressbar=False))
+    return xr.concat(parts, dim="draw").assign_coords(draw=free["draw"].values)
+
+
 def _one_blas_thread() -> Any:
     """Limit BLAS to one thread while sampling (its threads spin against numba's on small matrices)."""
     import contextlib
@@ -159,7 +179,7 @@ def sample_blocked(panel: ChoicePanel, spec: Spec, *, draws: int, tune: int, cha
                                      progress=f"blocked chain {c + 1}/{chains}" if progressbar else None))
     free = _free_dataset(prob, results, model)
     names = [v for v in keep if v in model.named_vars and (keep_persons or v not in ("person_taste", "person_wtp"))]
-    post = pm.compute_deterministics(free, var_names=names, model=model, progressbar=False)
+    post = _deterministics(free, names, model, prob)
     stats = {k: (("chain", "draw"), np.stack([res[k] for res in results])) for k in STAT_NAMES}
     stats["diverging"] = (("chain", "draw"), np.zeros((chains, post.sizes["draw"]), dtype=bool))
     sample_stats = xr.Dataset(stats, coords={"chain": post["chain"], "draw": post["draw"]})
