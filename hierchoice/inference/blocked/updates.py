@@ -19,6 +19,7 @@ from .problem import (
     MALA_TARGET,
     BlockedProblem,
     BlockedState,
+    _cov_log_prior,
     _location_log_prior,
     _person_information_eta,
     _sd_log_prior,
@@ -243,6 +244,77 @@ def _update_covariance(prob: BlockedProblem, state: BlockedState, rng: np.random
             sd = np.where(take, sd_new, sd)
         state.L = np.diag(sd)
     state.stats["cov_accept"] = acc / steps
+    _slice_covariance(prob, state, S, n, rng)
+
+
+def _cov_conditional(prob: BlockedProblem, S: np.ndarray, n: int) -> Any:
+    r"""Log density of the unconstrained covariance coordinates given the scatter ``S`` of ``n`` persons.
+
+    Coordinates: :math:`u = (\log L_{ii}, L_{ij})_{i>j}` (correlated) or :math:`\log\sigma_k` (independent). The
+    density is the model's prior on ``L`` (or the SDs) times :math:`\prod_n N(\eta_n; m_n, LL^	op)`, i.e.
+    :math:`-n\sum_i \log L_{ii} - 	frac12 \mathrm{tr}((LL^	op)^{-1}S)`, times the Jacobian :math:`\prod_i L_{ii}`
+    of the log. Its cost depends on the number of random tastes only.
+    """
+    r = S.shape[0]
+    rows, cols = np.tril_indices(r)
+    diag = rows == cols
+
+    def to_L(u: np.ndarray) -> np.ndarray:
+        L = np.zeros((r, r))
+        L[rows, cols] = np.where(diag, np.exp(u), u)
+        return L
+
+    def logp(u: np.ndarray) -> float:
+        L = to_L(u)
+        d = np.diag(L)
+        Linv = _solve_lower(L, np.eye(r))
+        quad = float(np.sum((Linv @ S) * Linv))
+        lp = _cov_log_prior(prob, L)
+        return lp - n * float(np.sum(np.log(d))) - 0.5 * quad + float(np.sum(np.log(d)))
+
+    return rows, cols, diag, to_L, logp
+
+
+def _slice_covariance(prob: BlockedProblem, state: BlockedState, S: np.ndarray, n: int,
+                      rng: np.random.Generator, width: float = 0.5, max_steps: int = 20) -> None:
+    """One sweep of univariate slice sampling (stepping out, shrinkage; Neal 2003) over the covariance coordinates.
+
+    Leaves the same conditional invariant as the independence step above, and keeps moving where that step's
+    proposal fits the model's prior badly (few persons, priors that matter): no tuning, exact, and its cost does not
+    grow with the persons.
+    """
+    rows, cols, diag, to_L, logp = _cov_conditional(prob, S, n)
+    L = state.L if prob.layout.correlated else np.diag(np.diag(state.L))
+    u = np.where(diag, np.log(np.maximum(L[rows, cols], 1e-300)), L[rows, cols])
+    coords = range(len(u)) if prob.layout.correlated else np.flatnonzero(diag)
+    cur = logp(u)
+    for j in coords:
+        level = cur + math.log(rng.random())
+        lo = u[j] - width * rng.random()
+        hi = lo + width
+        x = u.copy()
+        for _ in range(max_steps):  # step out
+            x[j] = lo
+            if logp(x) <= level:
+                break
+            lo -= width
+        for _ in range(max_steps):
+            x[j] = hi
+            if logp(x) <= level:
+                break
+            hi += width
+        while True:  # shrink
+            x[j] = lo + (hi - lo) * rng.random()
+            val = logp(x)
+            if val > level:
+                u, cur = x, val
+                break
+            if x[j] < u[j]:
+                lo = x[j]
+            else:
+                hi = x[j]
+    L_new = to_L(u)
+    state.L = L_new if prob.layout.correlated else np.diag(np.diag(L_new))
 
 
 def _cov_prior_grad(prob: BlockedProblem, L: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
