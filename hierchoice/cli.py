@@ -51,6 +51,10 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     out = save_fit(result, args.out)
     print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
     print(result.population().to_string(float_format=lambda v: f"{v:.4g}"))
+    if result.approximate:
+        from .inference.results import APPROXIMATE_CAUTION
+
+        print(f"\nCAUTION: {APPROXIMATE_CAUTION}")
     print(f"\nresults written to {out}/ (check convergence before reading them: hierchoice check {out})")
     return 0
 

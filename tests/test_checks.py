@@ -348,3 +348,17 @@ def test_trace_plot_says_how_many_parameters_it_leaves_out(healthy: ChoiceFit) -
     assert fig._suptitle is not None and fig._suptitle.get_text().startswith(f"first 3 of {n_all} population")
     full = plot_trace(healthy.idata, max_parameters=n_all)
     assert full._suptitle is None
+
+
+def test_an_approximate_fit_fails_the_exact_method_check(healthy: ChoiceFit, tmp_path) -> None:
+    # an approximate fit's intervals are too narrow (docs/performance.md, B1): check and report must say so
+    from dataclasses import replace
+
+    from hierchoice.inference.results import APPROXIMATE_CAUTION
+
+    approx = replace(healthy, info=dict(healthy.info, approximate=True))
+    rec = _by(convergence_checks(approx), "exact_method")
+    assert rec.verdict == "fail" and "narrower" in rec.advice
+    assert "exact_method" not in {c.check for c in convergence_checks(healthy)}  # negative control
+    page = hc.write_report(hc.save_fit(approx, tmp_path / "approx")).read_text(encoding="utf-8")
+    assert APPROXIMATE_CAUTION.split(":")[0] in page

@@ -566,7 +566,13 @@ def convergence_checks(result: Any, *, layout: ModelLayout | None = None,
     """
     idata = getattr(result, "idata", result)
     layout = layout if layout is not None else getattr(result, "layout", None)
-    out = population_checks(idata, table=table) + sampler_checks(idata) + person_checks(idata)
+    out = []
+    if getattr(result, "approximate", False):
+        from ..inference.results import APPROXIMATE_CAUTION
+
+        out.append(Check("exact_method", "fit", math.nan, math.nan, "an exact method (NUTS or blocked)", "fail",
+                         APPROXIMATE_CAUTION, "docs/performance.md (B1)"))
+    out += population_checks(idata, table=table) + sampler_checks(idata) + person_checks(idata)
     if layout is not None:
         out += lognormal_sd_checks(idata, layout)
     return out

@@ -37,7 +37,7 @@ from ..exceptions import ArchiveError, FitError, SpecError
 from ..model.build import ModelLayout, model_layout
 from ..spec import Spec
 
-__all__ = ["ChoiceFit", "population_summary", "thin_draws", "save_fit", "load_fit", "POSTERIOR_FILE"]
+__all__ = ["APPROXIMATE_CAUTION", "ChoiceFit", "population_summary", "thin_draws", "save_fit", "load_fit", "POSTERIOR_FILE"]
 
 POSTERIOR_FILE = "posterior.nc"
 
@@ -167,6 +167,16 @@ def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
     table = pd.DataFrame(rows).set_index("parameter")
     table.attrs["prob"] = prob
     return table
+
+
+#: What every output of an approximate (ADVI) fit says about it: figures measured on the B1 benchmark
+#: (docs/performance.md, "approximate path").
+APPROXIMATE_CAUTION = (
+    "This is an APPROXIMATE fit (mean-field ADVI): its intervals are narrower than the exact posterior's. On the B1 "
+    "benchmark its posterior SDs were 0.47-0.73 of the exact ones for taste means and 0.28-0.50 for taste SDs "
+    "(docs/performance.md). Do not report its intervals; refit with --method nuts, or --method blocked for large "
+    "panels, for numbers you hand on."
+)
 
 
 def thin_draws(posterior: Any, max_draws: int | None) -> Any:

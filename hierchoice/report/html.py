@@ -204,7 +204,7 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
         sections.append(("scenario", "Market scenario", "<p>No market was given. To see predicted shares, make a "
                          "market table (one row per alternative, the data's attribute columns) and run "
                          "<code>hierchoice report DIR --market market.csv</code>; see docs/reporting.md.</p>", False))
-    sections.append(("cautions", "Cautions", _cautions_section(), False))
+    sections.append(("cautions", "Cautions", _cautions_section(result), False))
     for name, table in csv.items():
         write_with(folder / name, lambda tmp, t=table: t.to_csv(tmp, index=False, encoding="utf-8"))
     sections.append(("files", "Files", _files_list(folder, [REPORT_FILE, *csv]), False))

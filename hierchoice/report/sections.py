@@ -479,5 +479,9 @@ _CAUTIONS = [
 ]
 
 
-def _cautions_section() -> str:
-    return "<ul>" + "".join(f"<li>{_e(c)}</li>" for c in _CAUTIONS) + "</ul>"
+def _cautions_section(result: Any = None) -> str:
+    """The usual cautions; an approximate fit's caution comes first."""
+    from ..inference.results import APPROXIMATE_CAUTION
+
+    items = ([APPROXIMATE_CAUTION] if getattr(result, "approximate", False) else []) + list(_CAUTIONS)
+    return "<ul>" + "".join(f"<li>{_e(c)}</li>" for c in items) + "</ul>"

@@ -163,7 +163,6 @@ def sample_blocked(panel: ChoicePanel, spec: Spec, *, draws: int, tune: int, cha
 
     import arviz as az
     load_backend()
-    import pymc as pm
     import xarray as xr
 
     spec = replace(spec, model=replace(spec.model, parameterization="centred"))
