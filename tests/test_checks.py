@@ -21,8 +21,15 @@ import hierchoice as hc
 from hierchoice._io import MARKER
 from hierchoice.diagnostics import checks
 from hierchoice.diagnostics.checks import (
-    EBFMI_MIN, ESS_MIN, RHAT_MAX, convergence_checks, lognormal_sd_checks, overall_verdict, parameter_diagnostics,
-    population_draws, sampler_checks,
+    EBFMI_MIN,
+    ESS_MIN,
+    RHAT_MAX,
+    convergence_checks,
+    lognormal_sd_checks,
+    overall_verdict,
+    parameter_diagnostics,
+    population_draws,
+    sampler_checks,
 )
 from hierchoice.diagnostics.folder import check_folder, format_verdict
 from hierchoice.inference.results import ChoiceFit
