@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import functools
 from dataclasses import replace
 
 import numpy as np
@@ -107,7 +108,7 @@ def test_person_target_gradient_chain_rule_matches_finite_differences(ferry) -> 
     eps = 1e-6
     for n in range(5):
         eta_n = state.eta[n].copy()
-        lp, grad = target(n, eta_n)
+        _, grad = target(n, eta_n)
         for a in range(r):
             up, down = eta_n.copy(), eta_n.copy()
             up[a] += eps
@@ -223,7 +224,7 @@ def test_location_gradient_matches_finite_differences(which, request) -> None:  
     prob = bl.blocked_problem(panel, spec)
     st = _random_state(prob, np.random.default_rng(13))
     x = np.concatenate([st.mu_free, st.gamma.reshape(-1)])
-    lp, grad = _location_terms(prob, st, x)
+    _, grad = _location_terms(prob, st, x)
     eps = 1e-6
     fd = np.array([(_location_terms(prob, st, x + eps * np.eye(x.size)[i])[0]
                     - _location_terms(prob, st, x - eps * np.eye(x.size)[i])[0]) / (2 * eps) for i in range(x.size)])
@@ -340,12 +341,12 @@ def test_covariance_step_matches_quadrature_of_the_sd_conditional(covariate_pane
     for k in range(prob.n_random):
         skk, s = float(resid[:, k] @ resid[:, k]), float(prob.sd_sd[k])
 
-        def dens(x, p=0):  # type: ignore[no-untyped-def]
+        def dens(x, p=0, s=s, skk=skk, c=0.0):  # type: ignore[no-untyped-def]
             return x**p * np.exp(-0.5 * (x / s) ** 2 - n * np.log(x) - skk / (2 * x**2) + c)
 
-        c = 0.0
         mode = np.sqrt(skk / n)
-        c = -np.log(dens(mode))
+        scale = dens(mode)
+        dens = functools.partial(dens, c=-np.log(scale))
         ref = quad(dens, 1e-6, 20 * mode, args=(1,), points=[mode])[0] / quad(dens, 1e-6, 20 * mode, points=[mode])[0]
         mcse = float(np.asarray(az.mcse(draws[None, :, k])).squeeze())
         assert abs(draws[:, k].mean() - ref) < 4 * mcse, (k, draws[:, k].mean(), ref, mcse)

@@ -49,4 +49,4 @@ from __future__ import annotations
 from .chain import BlockedSettings, initial_state, run_chain, sample_blocked, sweep
 from .problem import METHOD_NAME, BlockedProblem, BlockedState, blocked_problem, locations, log_density, person_betas
 
-__all__ = ["BlockedProblem", "BlockedState", "blocked_problem", "sample_blocked", "log_density", "METHOD_NAME", "BlockedSettings", "initial_state", "locations", "person_betas", "run_chain", "sweep"]
+__all__ = ["METHOD_NAME", "BlockedProblem", "BlockedSettings", "BlockedState", "blocked_problem", "log_density", "sample_blocked", "initial_state", "locations", "person_betas", "run_chain", "sweep"]

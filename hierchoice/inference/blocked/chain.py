@@ -5,7 +5,6 @@ May import: :mod:`.updates`, :mod:`.problem`, :mod:`.kernels`, ``hierchoice.mode
 
 from __future__ import annotations
 
-import logging
 import math
 import time
 from dataclasses import dataclass
@@ -20,16 +19,15 @@ from ...spec import Spec
 from .problem import BlockedProblem, BlockedState, blocked_problem, locations
 from .updates import _asis, _location_conjugate, _location_mala, _update_covariance, _update_persons
 
-log = logging.getLogger("hierchoice")
 
 @dataclass(frozen=True)
 class BlockedSettings:
     """Tuning of the sweep: MALA steps per person, random-walk steps of the location and ASIS blocks."""
 
-    person_steps: int = 1
+    person_steps: int = 2
     location_steps: int = 3
     covariance_steps: int = 2
-    asis_steps: int = 1
+    asis_steps: int = 2
     thin: int = 1
     precondition: str = "information"
 
@@ -85,7 +83,6 @@ def run_chain(prob: BlockedProblem, rng: np.random.Generator, *, draws: int, tun
             for k in STAT_NAMES:
                 out[k].append(state.stats.get(k, math.nan))
         if progress is not None and (i + 1) % max(1, total // 10) == 0:
-            log.info("%s: sweep %d/%d (%.1f s)", progress, i + 1, total, time.perf_counter() - t0)
             print(f"{progress}: sweep {i + 1}/{total} ({time.perf_counter() - t0:.1f} s)", flush=True)
     res = {k: np.array(v) for k, v in out.items() if v}
     res["L"] = res["L"].reshape(-1, r, r)

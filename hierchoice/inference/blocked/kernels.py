@@ -25,7 +25,10 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["person_loglik", "person_loglik_grad", "person_information", "person_loglik_grad_info", "mala_persons", "person_major"]
+#: Persons are processed in this many chunks (each thread takes whole chunks; scratch arrays once per chunk).
+CHUNKS = 64
+
+__all__ = ["mala_persons", "person_information", "person_loglik", "person_loglik_grad", "person_loglik_grad_info", "person_major"]
 
 
 def person_major(D: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -50,9 +53,8 @@ def _eval_person(Dn, an, n_o, beta, g, delta):  # type: ignore[no-untyped-def]
             for k in range(n_k):
                 d += Dn[r0 + j, k] * beta[k]
             delta[j] = d
-            if d > m:
-                m = d
-        s = math.exp(-m)
+            m = max(m, d)
+        s = 1.0 if m == 0.0 else math.exp(-m)
         for j in range(n_o):
             e = an[r0 + j] * math.exp(delta[j] - m)
             delta[j] = e
@@ -79,9 +81,8 @@ def _eval_person_value(Dn, an, n_o, beta, delta):  # type: ignore[no-untyped-def
             for k in range(n_k):
                 d += Dn[r0 + j, k] * beta[k]
             delta[j] = d
-            if d > m:
-                m = d
-        s = math.exp(-m)
+            m = max(m, d)
+        s = 1.0 if m == 0.0 else math.exp(-m)
         for j in range(n_o):
             s += an[r0 + j] * math.exp(delta[j] - m)
         ll -= m + math.log(s)
@@ -92,9 +93,11 @@ def _person_loglik(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-def]
     """Per-person log-likelihoods, shape (person,), of tastes ``beta`` (person, attribute)."""
     n_p = Dp.shape[0]
     out = np.empty(n_p)
-    for n in numba.prange(n_p):
+    n_chunks = min(n_p, CHUNKS)
+    for c in numba.prange(n_chunks):
         delta = np.empty(n_o)
-        out[n] = _eval_person_value(Dp[n], maskp[n], n_o, beta[n], delta)
+        for n in range(c * n_p // n_chunks, (c + 1) * n_p // n_chunks):
+            out[n] = _eval_person_value(Dp[n], maskp[n], n_o, beta[n], delta)
     return out
 
 
@@ -103,9 +106,11 @@ def _person_loglik_grad(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-def]
     n_p, _, n_k = Dp.shape
     out = np.empty(n_p)
     grad = np.empty((n_p, n_k))
-    for n in numba.prange(n_p):
+    n_chunks = min(n_p, CHUNKS)
+    for c in numba.prange(n_chunks):
         delta = np.empty(n_o)
-        out[n] = _eval_person(Dp[n], maskp[n], n_o, beta[n], grad[n], delta)
+        for n in range(c * n_p // n_chunks, (c + 1) * n_p // n_chunks):
+            out[n] = _eval_person(Dp[n], maskp[n], n_o, beta[n], grad[n], delta)
     return out, grad
 
 
@@ -236,8 +241,9 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
     n_p, _, n_k = Dp.shape
     n_r = rnd.size
     n_steps = xi.shape[0]
-    for n in numba.prange(n_p):
-        beta = beta_fixed[n].copy()
+    n_chunks = min(n_p, CHUNKS)
+    for c in numba.prange(n_chunks):  # scratch arrays once per chunk of persons, not once per person
+        beta = np.empty(n_k)
         g = np.empty(n_k)
         delta = np.empty(n_o)
         y = np.empty(n_r)
@@ -248,45 +254,50 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
         prop = np.empty(n_r)
         mean_f = np.empty(n_r)
         mean_b = np.empty(n_r)
-        cur = eta[n].copy()
-        Rn = R[n]
-        if use_cache:
-            ll = cache_ll[n]
+        cur = np.empty(n_r)
+        for n in range(c * n_p // n_chunks, (c + 1) * n_p // n_chunks):
+            for k in range(n_k):
+                beta[k] = beta_fixed[n, k]
             for a in range(n_r):
-                glik[a] = cache_g[n, a]
-        else:
-            ll = _lik_eta(Dp[n], maskp[n], n_o, beta, cur, rnd, logn, sign, g, delta, glik)
-        lp = ll + _prior_eta(cur, m[n], L, y, grad, glik)
-        hn = h[n]
-        acc_sum = 0.0
-        for s in range(n_steps):
-            _drift(cur, Rn, grad, hn, mean_f)
-            for a in range(n_r - 1, -1, -1):  # noise R^-T xi by back substitution
-                acc = xi[s, n, a]
-                for b in range(a + 1, n_r):
-                    acc -= Rn[b, a] * y[b]
-                y[a] = acc / Rn[a, a]
-            for a in range(n_r):
-                prop[a] = mean_f[a] + hn * y[a]
-            ll_p = _lik_eta(Dp[n], maskp[n], n_o, beta, prop, rnd, logn, sign, g, delta, glik_p)
-            lp_p = ll_p + _prior_eta(prop, m[n], L, y, grad_p, glik_p)
-            _drift(prop, Rn, grad_p, hn, mean_b)
-            log_a = lp_p - lp + _log_q(cur, mean_b, Rn, hn) - _log_q(prop, mean_f, Rn, hn)
-            a_prob = 1.0 if log_a >= 0.0 else (math.exp(log_a) if log_a == log_a else 0.0)
-            acc_sum += a_prob
-            if log_u[s, n] < log_a:
+                cur[a] = eta[n, a]
+            Rn = R[n]
+            if use_cache:
+                ll = cache_ll[n]
                 for a in range(n_r):
-                    cur[a] = prop[a]
-                    grad[a] = grad_p[a]
-                    glik[a] = glik_p[a]
-                lp = lp_p
-                ll = ll_p
-        for a in range(n_r):
-            eta[n, a] = cur[a]
-        accept[n] = acc_sum / n_steps
-        loglik[n] = ll
-        for a in range(n_r):
-            glik_out[n, a] = glik[a]
+                    glik[a] = cache_g[n, a]
+            else:
+                ll = _lik_eta(Dp[n], maskp[n], n_o, beta, cur, rnd, logn, sign, g, delta, glik)
+            lp = ll + _prior_eta(cur, m[n], L, y, grad, glik)
+            hn = h[n]
+            acc_sum = 0.0
+            for s in range(n_steps):
+                _drift(cur, Rn, grad, hn, mean_f)
+                for a in range(n_r - 1, -1, -1):  # noise R^-T xi by back substitution
+                    acc = xi[s, n, a]
+                    for b in range(a + 1, n_r):
+                        acc -= Rn[b, a] * y[b]
+                    y[a] = acc / Rn[a, a]
+                for a in range(n_r):
+                    prop[a] = mean_f[a] + hn * y[a]
+                ll_p = _lik_eta(Dp[n], maskp[n], n_o, beta, prop, rnd, logn, sign, g, delta, glik_p)
+                lp_p = ll_p + _prior_eta(prop, m[n], L, y, grad_p, glik_p)
+                _drift(prop, Rn, grad_p, hn, mean_b)
+                log_a = lp_p - lp + _log_q(cur, mean_b, Rn, hn) - _log_q(prop, mean_f, Rn, hn)
+                a_prob = 1.0 if log_a >= 0.0 else (0.0 if math.isnan(log_a) else math.exp(log_a))
+                acc_sum += a_prob
+                if log_u[s, n] < log_a:
+                    for a in range(n_r):
+                        cur[a] = prop[a]
+                        grad[a] = grad_p[a]
+                        glik[a] = glik_p[a]
+                    lp = lp_p
+                    ll = ll_p
+            for a in range(n_r):
+                eta[n, a] = cur[a]
+            accept[n] = acc_sum / n_steps
+            loglik[n] = ll
+            for a in range(n_r):
+                glik_out[n, a] = glik[a]
 
 
 def _person_loglik_grad_info(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-def]
@@ -319,9 +330,8 @@ def _person_loglik_grad_info(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-d
                 for k in range(n_k):
                     d += Dn[r0 + j, k] * b[k]
                 delta[j] = d
-                if d > mx:
-                    mx = d
-            s = math.exp(-mx)
+                mx = max(mx, d)
+            s = 1.0 if mx == 0.0 else math.exp(-mx)
             for j in range(n_o):
                 e = an[r0 + j] * math.exp(delta[j] - mx)
                 delta[j] = e

@@ -5,7 +5,6 @@ May import: :mod:`.kernels`, ``hierchoice.model``, ``hierchoice.data``, ``hierch
 
 from __future__ import annotations
 
-import logging
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -21,14 +20,10 @@ from .kernels import (
     person_major,
 )
 
-log = logging.getLogger("hierchoice")
-
 #: ``info["method"]`` of a blocked fit.
 METHOD_NAME = "blocked Gibbs (MALA persons)"
 #: Target acceptance of per-person MALA (Roberts & Rosenthal 1998, JRSS B 60).
 MALA_TARGET = 0.574
-#: Target acceptance of the random-walk steps (Roberts, Gelman & Gilks 1997).
-RW_TARGET = 0.234
 
 
 @dataclass

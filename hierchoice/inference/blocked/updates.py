@@ -44,7 +44,7 @@ def _update_persons(prob: BlockedProblem, state: BlockedState, rng: np.random.Ge
     Linv = _solve_lower(L, np.eye(prob.n_random))
     Q = Linv.T @ Linv
     if precondition == "information":
-        if adapt_rate is not None and (state.info is None or state.sweep % 10 == 0):
+        if state.info is None or (adapt_rate is not None and state.sweep % 10 == 0):
             state.info = _person_information_eta(prob, state)
         R = np.linalg.cholesky(Q[None, :, :] + state.info)
     else:
