@@ -215,10 +215,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--approximate", action="store_true",
                    help="mean-field ADVI instead of NUTS, for panels too large for NUTS (flagged approximate)")
-    p.add_argument("--method", choices=["nuts", "blocked", "advi"], default=None,
-                   help="overrides sampling.method: nuts (the default) samples the whole model with NUTS; blocked: the "
-                        "exact blocked sampler for large panels (10,000+ persons); advi: approximate, intervals too "
-                        "narrow (as --approximate)")
+    p.add_argument("--method", choices=["auto", "nuts", "blocked", "advi"], default=None,
+                   help="overrides sampling.method: auto (the default) uses NUTS, or the exact blocked sampler from "
+                        "10,000 persons; nuts or blocked force one; advi: approximate, intervals too narrow (as "
+                        "--approximate)")
     p.add_argument("--person-batch", type=whole_number_option(1), default=None, metavar="N",
                    help="with --approximate: persons per random batch (default: 500 when the panel has over "
                         "1000 persons, else all)")

@@ -61,7 +61,7 @@ TASK_SCOPES = ("person", "global")
 INVALID_TASK_POLICIES = ("error", "drop")
 PARAMETERIZATIONS = ("auto", "noncentred", "centred")
 BACKENDS = ("auto", "pymc", "nutpie", "numpyro")
-METHODS = ("nuts", "blocked", "advi")
+METHODS = ("auto", "nuts", "blocked", "advi")
 
 
 @dataclass(frozen=True)
@@ -377,7 +377,7 @@ class SamplingOptions:
     store_person_draws: bool = True
     cores: int | None = None
     mass_matrix: str = "diagonal"
-    method: str = "nuts"
+    method: str = "auto"
 
     @classmethod
     def from_dict(cls, table: Mapping[str, Any]) -> SamplingOptions:
@@ -402,7 +402,7 @@ class SamplingOptions:
             cores=None if cores is None else _positive_int(cores, "sampling.cores"),
             mass_matrix=_choice(table.get("mass_matrix", "diagonal"), ("diagonal", "low_rank"),
                                 "sampling.mass_matrix"),
-            method=_choice(table.get("method", "nuts"), METHODS, "sampling.method"),
+            method=_choice(table.get("method", "auto"), METHODS, "sampling.method"),
         )
 
 

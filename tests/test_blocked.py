@@ -528,3 +528,24 @@ def test_a_blocked_fit_without_person_draws_reports_the_same_population():
     assert not bare.has_person_draws and list(bare.posterior["draw"].values) == list(range(70))
     for name in ("taste_mean", "taste_sd", "taste_corr"):
         np.testing.assert_allclose(bare.posterior[name].values, full.posterior[name].values, rtol=1e-12)
+
+
+def test_auto_picks_nuts_for_small_panels_and_blocked_for_large_ones(monkeypatch):
+    # the rule of docs/blocked.md: NUTS below AUTO_BLOCKED_PERSONS persons, the blocked sampler from there on
+    # when it supports the model; never the approximate path
+    import hierchoice.inference.sampling as sampling
+
+    sim = hc.ferry_scenario(30, n_tasks=6, seed=4, correlated=True)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    assert panel.spec.sampling.method == "auto"
+    assert sampling.choose_method(panel) == "nuts"
+    monkeypatch.setattr(sampling, "AUTO_BLOCKED_PERSONS", 30)
+    assert sampling.choose_method(panel) == "blocked"
+    fixed_only = copy.deepcopy(panel.spec.to_dict())
+    for attr in fixed_only["attributes"].values():
+        attr["taste"] = "fixed"
+        attr.pop("sign", None)
+    fixed_only["model"]["correlated"] = False
+    assert sampling.choose_method(panel, fixed_only) == "nuts"  # nothing random: the blocked sampler does not apply
+    result = hc.fit(panel, draws=30, tune=30, chains=1, seed=2, progressbar=False)
+    assert result.info["backend"] == "blocked" and result.spec.sampling.method == "blocked"

@@ -28,7 +28,7 @@ from ..model.likelihood import difference_data, task_loglik_numpy
 from ..spec import Spec, load_spec
 from .results import ChoiceFit
 
-__all__ = ["fit", "resolve_backend", "task_log_likelihood", "add_log_likelihood", "REPORTED_VARS"]
+__all__ = ["fit", "choose_method", "AUTO_BLOCKED_PERSONS", "resolve_backend", "task_log_likelihood", "add_log_likelihood", "REPORTED_VARS"]
 
 log = logging.getLogger("hierchoice")
 
@@ -181,7 +181,9 @@ def fit(
         See ``docs/spec.md`` ([sampling]).
     progressbar : bool, default True
     method : {"nuts", "blocked", "advi"}, optional
-        Defaults to the spec's ``sampling.method`` (``"nuts"`` unless set).
+        Defaults to the spec's ``sampling.method``, whose default ``"auto"`` is
+        :func:`choose_method`: NUTS, or the blocked sampler for panels of
+        :data:`AUTO_BLOCKED_PERSONS` persons or more. ``"auto"`` never picks ``"advi"``.
         ``"blocked"`` samples the centred model exactly with the blocked Gibbs-style
         sampler of :mod:`hierchoice.inference.blocked` (vectorised per-person MALA,
         conjugate and sufficient-statistic population updates, interweaving): for
@@ -210,6 +212,8 @@ def fit(
     """
     if method is None:
         method = (panel.spec if spec is None else load_spec(spec)).sampling.method
+    if method == "auto":
+        method = choose_method(panel, spec)
     if method not in ("nuts", "advi", "blocked"):
         raise SpecError(f"method must be 'nuts', 'advi' or 'blocked', got {method!r}.")
     batch = _person_batch(person_batch, panel.n_persons, method)
@@ -262,6 +266,23 @@ def fit(
     if result.has_person_draws:
         add_log_likelihood(result)
     return result
+
+
+#: From this many persons ``method = "auto"`` uses the blocked sampler. Measured (docs/blocked.md): at 10,000 persons
+#: with 5 correlated tastes (B3) NUTS reached max R-hat 1.60 and bulk ESS 6.8 in 16.9 minutes while the blocked
+#: sampler reached ESS >= 400 everywhere in 7.3 minutes; on small panels (100 persons x 15 tasks) NUTS gave 4x the
+#: smallest ESS in the same time. Sizes in between are not measured yet.
+AUTO_BLOCKED_PERSONS = 10_000
+
+
+def choose_method(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None) -> str:
+    """What ``method = "auto"`` means for this panel: ``"blocked"`` from :data:`AUTO_BLOCKED_PERSONS` persons when
+    the blocked sampler supports the model (no WTP space, at least one random taste), else ``"nuts"``."""
+    if panel.n_persons < AUTO_BLOCKED_PERSONS:
+        return "nuts"
+    spec = panel.spec if spec is None else load_spec(spec)
+    layout = model_layout(panel.with_spec(spec), spec)
+    return "nuts" if layout.wtp_space or not layout.random else "blocked"
 
 
 def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool) -> ChoiceFit:

@@ -83,7 +83,7 @@ class NutsFitter:
     chains: int = 2
     backend: str = "pymc"
     target_accept: float | None = None
-    method: str = "nuts"
+    method: str = "auto"
 
     @classmethod
     def from_spec(cls, spec: Spec) -> NutsFitter:
