@@ -39,6 +39,26 @@ def person_major(D: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarra
     return np.ascontiguousarray(np.transpose(D, (1, 2, 0)), dtype=float), np.ascontiguousarray(mask, dtype=float)
 
 
+@numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def _task_weights(Dn, an, r0, n_o, beta, delta):  # type: ignore[no-untyped-def]
+    """One task (rows ``r0 .. r0 + n_o``): fill ``delta`` with the non-chosen alternatives' weights
+    :math:`a_{ntj} e^{\Delta_{ntj} - m}` and return ``(m, s)``, so the task's log-likelihood is
+    :math:`-(m + \log s)` and the probability of alternative ``j`` is ``delta[j] / s``."""
+    m = 0.0
+    for j in range(n_o):
+        d = 0.0
+        for k in range(Dn.shape[1]):
+            d += Dn[r0 + j, k] * beta[k]
+        delta[j] = d
+        m = max(m, d)
+    s = 1.0 if m == 0.0 else math.exp(-m)
+    for j in range(n_o):
+        e = an[r0 + j] * math.exp(delta[j] - m)
+        delta[j] = e
+        s += e
+    return m, s
+
+
 @numba.njit(cache=True, nogil=True, error_model="numpy")
 def _eval_person(Dn, an, n_o, beta, g, delta):  # type: ignore[no-untyped-def]
     """Log-likelihood of one person (rows ``Dn`` (row, attribute), mask ``an``) and its gradient into ``g``."""
@@ -47,18 +67,7 @@ def _eval_person(Dn, an, n_o, beta, g, delta):  # type: ignore[no-untyped-def]
         g[k] = 0.0
     ll = 0.0
     for r0 in range(0, n_rows, n_o):
-        m = 0.0
-        for j in range(n_o):
-            d = 0.0
-            for k in range(n_k):
-                d += Dn[r0 + j, k] * beta[k]
-            delta[j] = d
-            m = max(m, d)
-        s = 1.0 if m == 0.0 else math.exp(-m)
-        for j in range(n_o):
-            e = an[r0 + j] * math.exp(delta[j] - m)
-            delta[j] = e
-            s += e
+        m, s = _task_weights(Dn, an, r0, n_o, beta, delta)
         ll -= m + math.log(s)
         inv = 1.0 / s
         for j in range(n_o):
@@ -75,16 +84,7 @@ def _eval_person_value(Dn, an, n_o, beta, delta):  # type: ignore[no-untyped-def
     n_rows, n_k = Dn.shape
     ll = 0.0
     for r0 in range(0, n_rows, n_o):
-        m = 0.0
-        for j in range(n_o):
-            d = 0.0
-            for k in range(n_k):
-                d += Dn[r0 + j, k] * beta[k]
-            delta[j] = d
-            m = max(m, d)
-        s = 1.0 if m == 0.0 else math.exp(-m)
-        for j in range(n_o):
-            s += an[r0 + j] * math.exp(delta[j] - m)
+        m, s = _task_weights(Dn, an, r0, n_o, beta, delta)
         ll -= m + math.log(s)
     return ll
 
@@ -324,18 +324,7 @@ def _person_loglik_grad_info(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-d
         F = out[n]
         total = 0.0
         for r0 in range(0, n_rows, n_o):
-            mx = 0.0
-            for j in range(n_o):
-                d = 0.0
-                for k in range(n_k):
-                    d += Dn[r0 + j, k] * b[k]
-                delta[j] = d
-                mx = max(mx, d)
-            s = 1.0 if mx == 0.0 else math.exp(-mx)
-            for j in range(n_o):
-                e = an[r0 + j] * math.exp(delta[j] - mx)
-                delta[j] = e
-                s += e
+            mx, s = _task_weights(Dn, an, r0, n_o, b, delta)
             total -= mx + math.log(s)
             for k in range(n_k):
                 gt[k] = 0.0
