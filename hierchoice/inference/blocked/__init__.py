@@ -1,4 +1,4 @@
-"""A blocked (Gibbs-style) MCMC sampler for the panel mixed logit: an exact second method beside NUTS.
+r"""A blocked (Gibbs-style) MCMC sampler for the panel mixed logit: an exact second method beside NUTS.
 
 It targets the posterior of the **centred** model that :func:`hierchoice.model.build_model`
 writes (``model.parameterization = "centred"``): the same priors (:data:`~hierchoice.model.PRIOR_SD`
