@@ -19,6 +19,7 @@ def main() -> None:
 
     import hierchoice as hc
     from hierchoice.inference import blocked as bl
+    from hierchoice.inference.blocked.chain import _one_blas_thread
     from hierchoice.spec import load_spec
 
     p = argparse.ArgumentParser()
@@ -40,7 +41,7 @@ def main() -> None:
     prob = bl.blocked_problem(panel, spec)
     settings = bl.BlockedSettings(person_steps=a.person_steps, asis_steps=a.asis_steps)
     res, times, cpu = [], [], []
-    with bl._one_blas_thread():
+    with _one_blas_thread():
         bl.run_chain(prob, np.random.default_rng(0), draws=2, tune=2, settings=settings, keep_persons=False)  # compile
         for child in np.random.SeedSequence(a.seed).spawn(a.chains):
             t0 = time.perf_counter()
