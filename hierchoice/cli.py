@@ -201,7 +201,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--spec", required=True, help="the TOML spec")
     p.set_defaults(func=_cmd_validate)
 
-    p = sub.add_parser("fit", help="fit the hierarchical logit with NUTS and write a results folder")
+    p = sub.add_parser("fit", help="fit the hierarchical logit (NUTS, or the blocked sampler for large panels) and write a results folder")
     p.add_argument("data", help="long (or wide) CSV or Parquet file")
     p.add_argument("--spec", required=True, help="the TOML spec")
     p.add_argument("--out", required=True, help="results folder: a new one, or one that hierchoice wrote earlier (replaced whole, atomically)")
