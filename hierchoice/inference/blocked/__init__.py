@@ -30,9 +30,9 @@ log-likelihood, one **sweep** updates, in turn,
    the model's prior (HalfNormal SDs, LKJ(2) correlations as PyMC's
    ``LKJCholeskyCov`` defines its density); its cost does not grow with the persons;
 4. **interweaving** (ASIS; Yu & Meng 2011) — with :math:`e_n = L^{-1}(\eta_n - m_n)`
-   held fixed, Langevin steps on the Cholesky factor ``L`` and the random means in
-   the non-centred form, whose conditional is the prior times the full-data
-   likelihood of :math:`\eta_n = m_n + L e_n`; preconditioned by its expected
+   held fixed, Langevin steps on the Cholesky factor ``L`` and every free mean (fixed
+   tastes' and centred constants' too) in the non-centred form, whose conditional is the
+   prior times the full-data likelihood of :math:`\eta_n = m_n + L e_n`; preconditioned by its expected
    information (simplified manifold MALA, Girolami & Calderhead 2011, during
    warm-up; the metric is frozen afterwards). This keeps SDs and correlations mixing
    where the centred updates alone crawl.

@@ -41,7 +41,7 @@ def person_major(D: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarra
 
 @numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _task_weights(Dn, an, r0, n_o, beta, delta):  # type: ignore[no-untyped-def]
-    """One task (rows ``r0 .. r0 + n_o``): fill ``delta`` with the non-chosen alternatives' weights
+    r"""One task (rows ``r0 .. r0 + n_o``): fill ``delta`` with the non-chosen alternatives' weights
     :math:`a_{ntj} e^{\Delta_{ntj} - m}` and return ``(m, s)``, so the task's log-likelihood is
     :math:`-(m + \log s)` and the probability of alternative ``j`` is ``delta[j] / s``."""
     m = 0.0

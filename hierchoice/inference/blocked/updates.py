@@ -354,97 +354,116 @@ def _entries(prob: BlockedProblem) -> tuple[np.ndarray, np.ndarray]:
     return np.tril_indices(r) if prob.layout.correlated else (np.arange(r), np.arange(r))
 
 
-def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.ndarray, movable: np.ndarray,
-                metric: bool = True, cached: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[Any, ...]:
-    r"""Log conditional of ``x`` = (entries of ``L``, movable means) given ``e``, its gradient and a metric.
+def _mean_jacobian(prob: BlockedProblem, mu_free: np.ndarray) -> np.ndarray:
+    r"""(attribute, attribute) Jacobian :math:`A = \partial\mu/\partial\tilde\mu = I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu)`
+    of the constant centring (:func:`~.problem.population_means`); the identity without it."""
+    K = prob.n_attributes
+    if prob.centre is None:
+        return np.eye(K)
+    dcoef = np.where(prob.lin, 1.0, prob.coef_sign * np.exp(np.where(prob.lin, 0.0, mu_free)))
+    return np.eye(K) - prob.centre * dcoef[None, :]
 
-    Non-centred: :math:`\eta_n = m_n + L e_n`. The gradient of the likelihood is
-    :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
-    :math:`\partial/\partial\mu_a = \sum_n \tilde g_{na}` with :math:`\tilde g_n = J_n\nabla_\beta\ell_n`;
-    the metric is the expected information
-    :math:`G_{(ab),(cd)} = \sum_n \tilde F_{n,ac}\, e_{nb} e_{nd}` (and likewise for the means) plus
-    the prior's curvature (Girolami & Calderhead 2011, simplified manifold MALA).
-    Returns ``(log density, gradient, metric or None, eta, (loglik, eta-gradient) per person)``; ``-inf``
-    outside the support. ``cached``: the per-person log-likelihoods and eta-gradients at ``x``, to skip
-    the likelihood pass (only without the metric).
+
+def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.ndarray, metric: bool = True,
+                cached: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[Any, ...]:
+    r"""Log conditional of ``x`` = (entries of ``L``, every free mean ``mu_std``) given ``e``, its gradient and a metric.
+
+    Non-centred: :math:`\eta_n = m_n + L e_n` on the random columns, :math:`\beta_{nk} = \theta_{nk}` on the fixed
+    ones, with :math:`\theta_n = \mu(\tilde\mu) + \Gamma^\top z_n`. With :math:`\tilde g_n` the gradient of
+    :math:`\ell_n` in :math:`\theta_n` (:math:`J_n\nabla_\beta\ell_n`, :math:`J` the lognormal chain rule) the
+    gradient is :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
+    :math:`\partial/\partial\tilde\mu = A^\top\sum_n \tilde g_n` (:func:`_mean_jacobian`, the constant centring).
+    The metric is the expected information :math:`G_{(ab),(cd)} = \sum_n \tilde F_{n,ac}\, e_{nb} e_{nd}`,
+    :math:`G_{(ab),\tilde\mu} = \sum_n \tilde F_{n,a\cdot}\,e_{nb}\,A`,
+    :math:`G_{\tilde\mu\tilde\mu} = A^\top\sum_n\tilde F_n A` plus the priors' curvature (Girolami & Calderhead
+    2011, simplified manifold MALA). Returns ``(log density, gradient, metric or None, eta, (loglik,
+    eta-gradient) per person)``; ``-inf`` outside the support. ``cached``: the per-person log-likelihoods and
+    eta-gradients at ``x``, to skip the likelihood pass (only without the metric and without fixed tastes).
     """
-    r = prob.n_random
+    r, K = prob.n_random, prob.n_attributes
     rows, cols = _entries(prob)
     n_l = rows.size
     L = np.zeros((r, r))
     L[rows, cols] = x[:n_l]
     if np.any(np.diag(L) <= 0):
         return -np.inf, x, None, state.eta, None
-    mu_free = state.mu_free.copy()
-    mu_free[prob.rnd[movable]] = x[n_l:]
+    mu_free = x[n_l:]
     theta = locations(prob, mu_free, state.gamma)
     eta = theta[:, prob.rnd] + e @ L.T
     beta = theta
     beta[:, prob.rnd] = np.where(prob.logn, prob.sign * np.exp(np.where(prob.logn, eta, 0.0)), eta)
-    J = np.where(prob.logn, beta[:, prob.rnd], 1.0)
+    n = e.shape[0]
+    J = np.ones((n, K))
+    J[:, prob.rnd] = np.where(prob.logn, beta[:, prob.rnd], 1.0)
+    Ft = None
     if metric:
         ll, g, F = person_loglik_grad_info(prob.Dp, prob.maskp, prob.n_others, beta)
-        gt = g[:, prob.rnd] * J
-        Ft = F[:, prob.rnd][:, :, prob.rnd] * J[:, :, None] * J[:, None, :]
-    elif cached is not None:
-        ll, gt = cached
+        gt = g * J
+        Ft = F * J[:, :, None] * J[:, None, :]
+    elif cached is not None and not prob.fixed.size:
+        ll = cached[0]
+        gt = np.zeros((n, K))
+        gt[:, prob.rnd] = cached[1]
     else:
         ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
-        gt = g[:, prob.rnd] * J
+        gt = g * J
+    A = _mean_jacobian(prob, mu_free)
     lp_l, grad_l, curv_l = _cov_prior_grad(prob, L)
     lp = float(ll.sum()) + lp_l + _location_log_prior(prob, mu_free, state.gamma)
-    n = e.shape[0]
-    GL = gt.T @ e
-    grad = np.concatenate([GL[rows, cols] + grad_l, gt[:, movable].sum(0) - x[n_l:] / prob.mean_sd[prob.rnd[movable]] ** 2])
-    if not metric:
-        return lp, grad, None, eta, (ll, gt)
-    M = (Ft.reshape(n, r * r).T @ (e[:, :, None] * e[:, None, :]).reshape(n, r * r)).reshape(r, r, r, r)  # [a,c,b,d]
+    gr = gt[:, prob.rnd]
+    GL = gr.T @ e
+    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ gt.sum(0) - mu_free / prob.mean_sd**2])
+    lik = (ll, np.ascontiguousarray(gr))
+    if Ft is None:
+        return lp, grad, None, eta, lik
+    Fr = Ft[:, prob.rnd][:, :, prob.rnd]
+    M = (Fr.reshape(n, r * r).T @ (e[:, :, None] * e[:, None, :]).reshape(n, r * r)).reshape(r, r, r, r)  # [a,c,b,d]
     G = np.zeros((x.size, x.size))
     G[:n_l, :n_l] = M[rows[:, None], rows[None, :], cols[:, None], cols[None, :]]
-    if movable.size:
-        Mmu = (Ft.reshape(n, r * r).T @ e).reshape(r, r, r)  # [a, c, b] = sum_n Ft[n,a,c] e[n,b]
-        G[:n_l, n_l:] = Mmu[rows[:, None], movable[None, :], cols[:, None]]
-        G[n_l:, :n_l] = G[:n_l, n_l:].T
-        G[n_l:, n_l:] = Ft.sum(0)[np.ix_(movable, movable)] + np.diag(1 / prob.mean_sd[prob.rnd[movable]] ** 2)
+    Mmu = (Ft[:, prob.rnd, :].reshape(n, r * K).T @ e).reshape(r, K, r)  # [a, c, b] = sum_n Ft[n,a,c] e[n,b]
+    G[:n_l, n_l:] = Mmu[rows, :, cols] @ A
+    G[n_l:, :n_l] = G[:n_l, n_l:].T
+    G[n_l:, n_l:] = A.T @ Ft.sum(0) @ A + np.diag(1 / prob.mean_sd**2)
     G[np.arange(n_l), np.arange(n_l)] += curv_l
     G += 1e-9 * np.eye(x.size) * max(1.0, float(np.abs(np.diag(G)).max()))
-    return lp, grad, G, eta, (ll, gt)
+    return lp, grad, G, eta, lik
 
 
 def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
           adapt_rate: float | None) -> None:
-    r"""Interweaving: simplified manifold MALA on ``L`` (and the random means) in the non-centred form.
+    r"""Interweaving: simplified manifold MALA on ``L`` and the free means in the non-centred form.
 
     With :math:`e_n = L^{-1}(\eta_n - m_n)` fixed (standard normal a priori, free of
-    :math:`L` and :math:`\mu`), the conditional of :math:`(L, \tilde\mu)` is the prior times the
-    full-data likelihood of :math:`\eta_n = m_n + L e_n` (Yu & Meng 2011, JCGS 20: the
-    ancillary half of the interweaving). Proposal
+    :math:`L` and :math:`\tilde\mu`), the conditional of :math:`(L, \tilde\mu)` is the prior times the
+    full-data likelihood of :math:`\eta_n = m_n + L e_n` and of the fixed coefficients (Yu & Meng 2011,
+    JCGS 20: the ancillary half of the interweaving). Every mean moves, fixed tastes' and constants' (through
+    the constant centring) included: in the centred blocks a mean is pinned by the persons' tastes to within
+    :math:`\sigma/\sqrt N`, which crawls when an SD is small. Proposal
     :math:`x' \sim N(x + \tfrac{h^2}{2}G(x)^{-1}\nabla\log\pi(x),\ h^2 G(x)^{-1})` with
     :math:`G` the expected information (:func:`_asis_terms`), accepted with the
     Metropolis–Hastings ratio that includes :math:`G` at both ends (Girolami & Calderhead 2011).
-    The means move only without constant centring (then :math:`\mu = \tilde\mu`).
     """
     r = prob.n_random
     rows, cols = _entries(prob)
+    n_l = rows.size
     theta = locations(prob, state.mu_free, state.gamma)
     e = _solve_lower(state.L, (state.eta - theta[:, prob.rnd]).T).T  # (person, random)
-    movable = np.arange(r) if prob.centre is None else np.arange(0)
-    x = np.concatenate([state.L[rows, cols], state.mu_free[prob.rnd[movable]]])
+    x = np.concatenate([state.L[rows, cols], state.mu_free])
     h = state.asis_scale
     # warm-up: the metric at both ends (simplified manifold MALA); sampling: the metric frozen at the end of
     # warm-up (a fixed preconditioner), so each step needs only the likelihood and its gradient
     frozen = adapt_rate is None and state.asis_metric is not None
     if frozen:
-        lp, grad, _, eta, lik = _asis_terms(prob, state, e, x, movable, metric=False, cached=state.cache)
+        lp, grad, _, eta, lik = _asis_terms(prob, state, e, x, metric=False, cached=state.cache)
         C = state.asis_metric
     else:
-        lp, grad, G, eta, lik = _asis_terms(prob, state, e, x, movable)
+        lp, grad, G, eta, lik = _asis_terms(prob, state, e, x)
         C = np.linalg.cholesky(G)
     acc = 0.0
     for _ in range(steps):
         mean_f = x + 0.5 * h * h * _chol_solve(C, grad)
         prop = mean_f + h * _solve_lower(C, rng.standard_normal(x.size)[:, None], trans=1)[:, 0]
-        lp_p, grad_p, G_p, eta_p, lik_p = _asis_terms(prob, state, e, prop, movable, metric=not frozen)
+        lp_p, grad_p, G_p, eta_p, lik_p = _asis_terms(prob, state, e, prop, metric=not frozen)
         a = 0.0
         if np.isfinite(lp_p):
             C_p = C if frozen else np.linalg.cholesky(G_p)
@@ -464,10 +483,9 @@ def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, s
         state.asis_metric = C
     state.cache = lik
     L = np.zeros((r, r))
-    L[rows, cols] = x[: rows.size]
+    L[rows, cols] = x[:n_l]
     state.L = L
-    state.mu_free = state.mu_free.copy()
-    state.mu_free[prob.rnd[movable]] = x[rows.size:]
+    state.mu_free = x[n_l:].copy()
     state.eta = np.ascontiguousarray(eta)
     state.asis_scale = h
     state.stats["asis_accept"] = acc / max(steps, 1)
