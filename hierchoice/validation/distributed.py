@@ -9,7 +9,7 @@ comes back:
 
 * **Where.** By default a :class:`distributed.LocalCluster` of worker
   *processes* on this machine, one thread each, with ``OMP_NUM_THREADS``,
-  ``MKL_NUM_THREADS`` and ``OPENBLAS_NUM_THREADS`` set to 1 so that ``n``
+  ``MKL_NUM_THREADS``, ``OPENBLAS_NUM_THREADS`` and ``NUMBA_NUM_THREADS`` set to 1 so that ``n``
   workers use ``n`` cores (each fit inside a worker is single-threaded and runs
   its chains one after the other). Pass a :class:`distributed.Client` or a
   scheduler address (``"tcp://host:8786"``) to use a cluster of your own.
@@ -48,8 +48,10 @@ __all__ = [
     "run_tasks",
 ]
 
-#: Environment of local worker processes: one BLAS / OpenMP thread each.
-SINGLE_THREAD_ENV = {"OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
+#: Environment of local worker processes: one BLAS / OpenMP / numba thread each (the blocked sampler's person
+#: kernels run in parallel over numba's threads; in a worker beside others that only oversubscribes the cores).
+SINGLE_THREAD_ENV = {"OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1",
+                     "NUMBA_NUM_THREADS": "1"}
 
 _INSTALL = "pip install \"dask[distributed]>=2024.1\""
 
