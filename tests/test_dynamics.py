@@ -43,7 +43,8 @@ def spec_with(**dynamics: Any) -> dict[str, Any]:
     }
 
 
-FULL = dict(lagged_choice=True, lag=["x"], lead=["x"], initial_conditions=True, initial_means=["x"])
+LAGS = dict(lagged_choice=True, lag=["x"], lead=["x"])
+FULL = LAGS | dict(initial_conditions=True, initial_means=["x"])
 ABC = ["a", "b", "c"]
 
 
@@ -56,7 +57,8 @@ def term(panel: ChoicePanel, name: str) -> np.ndarray:
 
 @pytest.fixture
 def flagged() -> ChoicePanel:
-    return ChoicePanel.from_frame(TABLE, spec_with(first_task="flag", **FULL))
+    # without initial conditions: with them, "flag" removes each person's first task (the initial condition)
+    return ChoicePanel.from_frame(TABLE, spec_with(first_task="flag", **LAGS))
 
 
 def test_flag_keeps_every_task_in_task_order(flagged: ChoicePanel) -> None:
@@ -95,16 +97,19 @@ def test_flag_lead_by_hand(flagged: ChoicePanel) -> None:
     np.testing.assert_array_equal(lead[1], [[0.5, 0.25, 0.75], [1.5, 2.5, 3.5], [7.5, 8.5, 9.5], [0, 0, 0]])
 
 
-def test_initial_conditions_by_hand(flagged: ChoicePanel) -> None:
+def test_initial_conditions_by_hand() -> None:
     # Wooldridge (2005, J. Applied Econometrics 20(1)): condition on the first observed choice and
     # the person means of the exogenous attributes. Reference alternative: the first, "a".
+    flagged = ChoicePanel.from_frame(TABLE, spec_with(first_task="flag", **FULL))
     assert flagged.covariates == ("first_choice:b", "first_choice:c", "mean:x")
     # person 10 first chose b (task 1), person 20 first chose c (task 5)
     np.testing.assert_array_equal(flagged.Z[:, :2], [[1, 0], [0, 1]])
-    # flag keeps every task: means over all of a person's rows
-    assert flagged.Z[0, 2] == pytest.approx((4 + 5 + 6 + 7 + 8 + 1 + 2 + 3) / 8)
-    assert flagged.Z[1, 2] == pytest.approx((4.5 + 5.5 + 6.5 + 0.5 + 0.25 + 0.75 + 1.5 + 2.5 + 3.5
-                                             + 7.5 + 8.5 + 9.5) / 12)
+    # the first task is conditioned on, not modelled: it leaves the panel; the other tasks without a lead stay
+    assert flagged.task_ids.tolist() == [[2, 3, None], [6, 7, 9]]
+    np.testing.assert_array_equal(flagged.lag_missing, [[False, True, False], [False, False, True]])
+    # means over the tasks kept in the panel
+    assert flagged.Z[0, 2] == pytest.approx((7 + 8 + 1 + 2 + 3) / 5)
+    assert flagged.Z[1, 2] == pytest.approx((0.5 + 0.25 + 0.75 + 1.5 + 2.5 + 3.5 + 7.5 + 8.5 + 9.5) / 9)
 
 
 def test_to_long_carries_dynamic_terms(flagged: ChoicePanel) -> None:
@@ -213,11 +218,12 @@ def test_initial_means_skip_unavailable_and_opt_out_rows() -> None:
     p = ChoicePanel.from_frame(table, spec)
     assert p.covariates == ("first_choice:a", "first_choice:b", "first_choice:c", "mean:x")
     np.testing.assert_array_equal(p.Z[:, :3], [[0, 1, 0], [0, 0, 1], [1, 0, 0]])
-    assert p.Z[0, 3] == pytest.approx((4 + 5 + 6 + 7 + 8 + 1 + 2) / 7)
-    assert p.Z[1, 3] == pytest.approx(51 / 12)
-    assert p.Z[2, 3] == pytest.approx(12 / 6)
+    # the first tasks are only the initial condition (not in the panel), so the means skip them too
+    assert p.Z[0, 3] == pytest.approx((7 + 8 + 1 + 2) / 4)
+    assert p.Z[1, 3] == pytest.approx(34.5 / 9)
+    assert p.Z[2, 3] == pytest.approx(6 / 3)
     # the unavailable (10, 3, c) needs no lag, so person 10's task 3 is complete; its lead is missing (last)
-    np.testing.assert_array_equal(p.lag_missing[0], [True, False, True, False])
+    np.testing.assert_array_equal(p.lag_missing[0], [False, True, False])
     # the opt-out's lag is 0 (its attributes are never used) and it is never "missing"
     none = p.alternatives.index("none")
     assert (term(p, "x_lag")[..., none] == 0).all()

@@ -81,7 +81,8 @@ class ChoicePanel:
     chosen : ndarray of int, shape (n_persons, n_tasks); -1 for padded tasks
     task_ids : ndarray of object, shape (n_persons, n_tasks); the user's task ids
     lag_missing : ndarray of bool, shape (n_persons, n_tasks)
-        Tasks kept under ``first_task = "flag"`` whose lag/lead was set to 0.
+        Tasks kept under ``first_task = "flag"`` whose lag/lead was set to 0: a person's first (or, for leads,
+        last) task, a task next to one removed as invalid, or one whose alternative was absent next door.
     Z : ndarray, shape (n_persons, n_covariates)
         Person covariates (including initial-conditions covariates).
     persons, alternatives, attributes, covariates : tuple of labels
@@ -322,14 +323,15 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
     chosen, avail = _indicators(df, spec)
     _check_unique_keys(df, spec)
     alternatives, is_opt_out = _alternatives(df, spec)
+    # task order within person, numbered before invalid tasks go so that a removed task leaves a gap in _pos
+    df = df.assign(_pos=_task_positions(df, cols))
     df, chosen, avail, is_opt_out = _drop_invalid_tasks(df, chosen, avail, is_opt_out, spec, summary)
     _check_some_choice(df, avail, spec)
 
     # 5. attributes: numeric columns, categorical coding, constants
     terms, values = _code_attributes(df, spec, alternatives, ~avail | is_opt_out, summary)
 
-    # 6. task order within person, and dynamics
-    df = df.assign(_pos=_task_positions(df, cols))
+    # 6. dynamics along each person's ordered tasks (a lag/lead across a removed task counts as missing)
     lag_missing = pd.Series(False, index=df.index)
     if spec.dynamics.active:
         df, values, lag_missing, terms = _add_dynamics(df, values, terms, chosen, avail, spec, summary)
