@@ -41,8 +41,14 @@ def _png_file(path: Path, alt: str) -> str:
     return f"<img class='diag' alt='{_e(alt)}' src='data:image/png;base64,{data}'>"
 
 
-def _taste_plot(result: ChoiceFit, persons: pd.DataFrame | None, max_draws: int = 200) -> str | None:
-    """Small multiples: the implied distribution across people of each random taste, with person means."""
+def _taste_plot(result: ChoiceFit, persons: pd.DataFrame | None, units: dict[str, str],
+                max_draws: int = 200) -> str | None:
+    """Small multiples: the implied distribution across people of each random taste, with person means.
+
+    ``units`` names each term's unit (the x axis). In WTP space the population curve of a term other than price
+    is of willingness to pay, so the respondents' means shown with it are their WTP (``person_wtp``), not their
+    utility coefficients.
+    """
     from scipy import stats
 
     layout = result.layout
@@ -71,8 +77,11 @@ def _taste_plot(result: ChoiceFit, persons: pd.DataFrame | None, max_draws: int 
         else:
             lo, hi = med_mu - 3 * med_sd, med_mu + 3 * med_sd
         pm = None
-        if persons is not None:
+        if layout.wtp_space and k != layout.price and "person_wtp" in post:
+            pm = post["person_wtp"].sel(wtp_attribute=name).mean(("chain", "draw")).values
+        elif persons is not None:
             pm = persons.loc[persons["attribute"] == name, "mean"].to_numpy()
+        if pm is not None:
             if pm.size:
                 lo, hi = min(lo, float(pm.min())), max(hi, float(pm.max()))
         pad = 0.05 * (hi - lo if hi > lo else 1.0)
@@ -99,8 +108,7 @@ def _taste_plot(result: ChoiceFit, persons: pd.DataFrame | None, max_draws: int 
         ax.set_title(_mpl_text(name), fontsize=10)
         ax.set_yticks([])
         ax.tick_params(labelsize=8)
-        what = "WTP" if layout.wtp_space and k != layout.price else "coefficient"
-        ax.set_xlabel(what, fontsize=8)
+        ax.set_xlabel(_mpl_text(units[name]), fontsize=8)
     for j in range(n, rows * cols):
         axes[j // cols][j % cols].set_visible(False)
     handles, labels = axes[0][0].get_legend_handles_labels()
@@ -134,7 +142,9 @@ def _forest(labels: Sequence[str], mid: np.ndarray, lo: np.ndarray, hi: np.ndarr
     return fig
 
 
-def _caterpillar(result: ChoiceFit, persons: pd.DataFrame, max_panels: int = 4) -> str | None:
+def _caterpillar(result: ChoiceFit, persons: pd.DataFrame, units: dict[str, str],
+                 max_panels: int = 4) -> str | None:
+    """Each respondent's posterior coefficient with its interval, sorted; ``units`` labels each panel's y axis."""
     names = [result.layout.names[k] for k in result.layout.random][:max_panels]
     if not names:
         return None
@@ -151,6 +161,7 @@ def _caterpillar(result: ChoiceFit, persons: pd.DataFrame, max_panels: int = 4) 
         ax.set_title(_mpl_text(name), fontsize=10)
         ax.set_xticks([])
         ax.set_xlabel("respondents, sorted by posterior mean", fontsize=8)
+        ax.set_ylabel(_mpl_text(units[name]), fontsize=7)
         ax.tick_params(labelsize=8)
         if t["eti_low"].min() < 0 < t["eti_high"].max():
             ax.axhline(0, color="#888", lw=0.8, ls="--")

@@ -15,7 +15,10 @@
 ``population_tastes.csv``, ``person_tastes.csv``, ``wtp.csv``, ``person_wtp.csv``, ``shares.csv``
     The tables behind the report (see :mod:`hierchoice.analysis.tastes`,
     :mod:`hierchoice.analysis.wtp` and :mod:`hierchoice.analysis.shares`); person tables need person
-    draws, WTP tables a price attribute, ``shares.csv`` a market.
+    draws, WTP tables a price attribute, ``shares.csv`` a market. The taste and WTP tables carry a ``unit``
+    column: the unit of each row (utility per unit of a term, price per unit of a term, share of people, ...),
+    so that a willingness-to-pay-space fit, whose price row is a utility coefficient and whose other rows are
+    money, never shows two units under one header.
 
 Every piece of user text (attribute, alternative and person names, the spec,
 messages) is HTML-escaped. The report is a thin layer: every number in it comes
@@ -50,6 +53,7 @@ from .sections import (
     _model_section,
     _population_section,
     _scenario_section,
+    _with_units,
     _wtp_section,
 )
 from .status import _normal_verdict, convergence_status
@@ -182,9 +186,9 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
     provisional = status["verdict"] in ("fail", "not checked")
     csv: dict[str, pd.DataFrame] = {}
 
-    pop = population_tastes(result, prob=prob)
+    pop = _with_units(result, population_tastes(result, prob=prob))
     csv["population_tastes.csv"] = pop
-    persons = person_tastes(result, prob=prob) if result.has_person_draws else None
+    persons = _with_units(result, person_tastes(result, prob=prob)) if result.has_person_draws else None
     if persons is not None:
         csv["person_tastes.csv"] = persons
     sections: list[tuple[str, str, str, bool]] = [

@@ -78,8 +78,9 @@ def _kv(pairs: Sequence[tuple[str, Any]]) -> str:
 
 
 def _records_html(records: Sequence[Check]) -> str:
-    return "".join(f"<div class='caution'><strong>{_e(r.kind.replace('_', ' '))}:</strong> {_e(r.message)}</div>"
-                   for r in records)
+    """Warnings as cautions, ``info`` records (a long WTP tail, say) as notes."""
+    return "".join(f"<div class='{'caution' if r.level == 'warning' else 'note'}'><strong>"
+                   f"{_e(r.kind.replace('_', ' '))}:</strong> {_e(r.message)}</div>" for r in records)
 
 
 def _mpl_text(text: Any) -> str:

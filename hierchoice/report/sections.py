@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from ..analysis.tastes import taste_shrinkage
+from ..analysis.wtp import coefficient_units, person_wtp, population_wtp, price_attribute, taste_units
 from ..exceptions import HierchoiceError
 from ..inference.results import ChoiceFit
 from .figures import (
@@ -44,7 +45,7 @@ from .markup import (
 from .status import _normal_verdict
 
 __all__ = ["_cautions_section", "_convergence_section", "_fit_section", "_individual_section", "_job_section",
-           "_model_section", "_population_section", "_scenario_section", "_wtp_section"]
+           "_model_section", "_population_section", "_scenario_section", "_with_units", "_wtp_section"]
 
 
 def _convergence_section(status: dict[str, Any], folder: Path) -> str:
@@ -267,8 +268,43 @@ def _model_section(result: ChoiceFit) -> str:
             + f"<details><summary>The spec as fitted (TOML)</summary><pre>{_e(toml)}</pre></details>")
 
 
+#: The unit of the population-tastes rows that are not in a term's units.
+_FIXED_UNITS = {"share_positive": "share of people", "correlation": "correlation of the underlying normals (no unit)"}
+
+
+def _with_units(result: ChoiceFit, table: pd.DataFrame) -> pd.DataFrame:
+    """A tastes table with a ``unit`` column after ``attribute`` (or ``scale``): the unit of each row.
+
+    ``population_tastes`` rows: ``population_mean`` / ``population_sd`` and covariate effects are on the scale of the
+    population's normal distribution (a lognormal term's log), the rest in the term's units (in WTP space: money
+    per unit for every term but price, utility per unit for price). ``person_tastes`` rows: each person's utility
+    coefficient, in either space.
+    """
+    out = table.copy()
+    if "quantity" not in out:
+        units = coefficient_units(result)
+        out.insert(list(out.columns).index("attribute") + 1, "unit", [units[a] for a in out["attribute"]])
+        return out
+    value, latent = taste_units(result), taste_units(result, latent=True)
+
+    def unit(quantity: str, attribute: str, other: str) -> str:
+        if quantity in _FIXED_UNITS:
+            return _FIXED_UNITS[quantity]
+        if quantity == "covariate_effect":
+            return f"{latent[attribute]}, per unit of {other}"
+        return latent[attribute] if quantity.startswith("population_") else value[attribute]
+
+    others = out["other"] if "other" in out else [""] * len(out)
+    at = list(out.columns).index("scale" if "scale" in out else "attribute") + 1
+    rows = zip(out["quantity"], out["attribute"], others)
+    out.insert(at, "unit", [unit(str(q), str(a), str(o)) for q, a, o in rows])
+    return out
+
+
 def _population_section(result: ChoiceFit, table: pd.DataFrame, persons: pd.DataFrame | None, prob: float) -> str:
     layout = result.layout
+    if "unit" not in table:
+        table = _with_units(result, table)
     get = {(q, a): r for q, a, r in zip(table["quantity"], table["attribute"], table.to_dict("records"))}
     rows = []
     for k, name in enumerate(layout.names):
@@ -279,17 +315,21 @@ def _population_section(result: ChoiceFit, table: pd.DataFrame, persons: pd.Data
         sd = get.get(("sd_across_people", name))
         p10, p90 = get.get(("p10_across_people", name)), get.get(("p90_across_people", name))
         share = get.get(("share_positive", name))
+        unit = (mean or median or {}).get("unit", "")
         spread = f"{_num(p10['median'])} to {_num(p90['median'])}" if p10 and p90 else "everyone the same"
-        rows.append([name, taste, _interval(mean) if mean else "", _interval(median) if median else "–",
+        rows.append([name, taste, unit, _interval(mean) if mean else "", _interval(median) if median else "–",
                      _interval(sd) if sd else "0", spread, _interval(share, _pct) if share else ""])
     pct = f"{100 * prob:g} %"
-    head = ["term", "taste", "mean across people", "median across people", "SD across people",
-            "10 % – 90 % of people", "share with a positive β"]
+    head = ["term", "taste", "unit", "mean across people", "median across people", "SD across people",
+            "10 % – 90 % of people", "share with a positive value"]
+    space = (" In this willingness-to-pay-space model every term but the price describes the willingness to pay "
+             "(money per unit), the price its utility coefficient (utility per unit of price): the unit column "
+             "says which." if layout.wtp_space else "")
     body = [
         f"<p>For each term, the distribution of the coefficient (in WTP space: of the willingness to pay) across "
-        f"people implied by the posterior. Cells show the posterior median and, in brackets, the {pct} "
-        "highest-density interval. The 10 %–90 % column is the posterior median of those quantiles: the spread of "
-        "tastes between people, not uncertainty.</p>",
+        f"people implied by the posterior, in the unit of its row. Cells show the posterior median and, in "
+        f"brackets, the {pct} highest-density interval. The 10 %–90 % column is the posterior median of those "
+        f"quantiles: the spread of tastes between people, not uncertainty. Utility is on the logit scale.{space}</p>",
         _table(head, rows),
     ]
     if layout.shifted:
@@ -298,14 +338,14 @@ def _population_section(result: ChoiceFit, table: pd.DataFrame, persons: pd.Data
     corr = table[table["quantity"] == "correlation"]
     if len(corr):
         body.append("<h3>Correlations between random tastes</h3>")
-        body.append(_table(["term", "with", f"correlation [{pct} HDI]"],
+        body.append(_table(["term", "with", f"correlation of the underlying normals, no unit [{pct} HDI]"],
                            [[r["attribute"], r["other"], _interval(r)] for r in corr.to_dict("records")]))
     cov = table[table["quantity"] == "covariate_effect"]
     if len(cov):
         body.append("<h3>Covariate effects on the population means</h3>")
-        body.append(_table(["term", "covariate", "scale", f"shift per unit [{pct} HDI]"],
-                           [[r["attribute"], r["other"], r["scale"], _interval(r)] for r in cov.to_dict("records")]))
-    plot = _taste_plot(result, persons)
+        body.append(_table(["term", "covariate", "unit", f"shift [{pct} HDI]"],
+                           [[r["attribute"], r["other"], r["unit"], _interval(r)] for r in cov.to_dict("records")]))
+    plot = _taste_plot(result, persons, taste_units(result))
     if plot:
         body.append("<h3>Tastes across people</h3>" + plot)
         body.append("<p class='caption'>Blue: the population distribution of each random taste (median curve and 90 % "
@@ -318,8 +358,6 @@ def _population_section(result: ChoiceFit, table: pd.DataFrame, persons: pd.Data
 
 
 def _wtp_section(result: ChoiceFit, prob: float, csv: dict[str, pd.DataFrame]) -> str:
-    from ..analysis.wtp import person_wtp, population_wtp, price_attribute
-
     try:
         price = price_attribute(result)
     except HierchoiceError:
@@ -347,7 +385,7 @@ def _wtp_section(result: ChoiceFit, prob: float, csv: dict[str, pd.DataFrame]) -
                      f"{_num(p10['median'])} to {_num(p90['median'])}" if p10 and p90 else "",
                      _interval(share, _pct) if share else ""])
     pct = f"{100 * prob:g} %"
-    parts.append(_table(["term", "meaning", f"median across people [{pct} HDI]", "mean across people",
+    parts.append(_table(["term", "unit", f"median across people [{pct} HDI]", "mean across people",
                          "10 % – 90 % of people", "share willing to pay (> 0)"], rows))
     if names:
         meds = [get[("median_across_people", a)] for a in names]
@@ -377,26 +415,29 @@ def _individual_section(result: ChoiceFit, persons: pd.DataFrame | None, prob: f
         return ("<p>This fit kept no person draws (sampling.store_person_draws = false): individual tastes are not "
                 "available. Refit with store_person_draws = true to see them.</p>")
     parts = [f"<p>Each respondent's own tastes, as posterior means and {100 * prob:g} % intervals, are in "
-             "<strong>person_tastes.csv</strong> (one row per respondent and term). They combine the respondent's "
+             "<strong>person_tastes.csv</strong> (one row per respondent and term, utility coefficients with their "
+             "unit" + ("; the willingness to pay of each respondent is in person_wtp.csv" if result.layout.wtp_space
+                       else "") + "). They combine the respondent's "
              "choices with the population distribution: with few choices per person, an estimate is pulled "
              "towards the population mean (shrinkage), so individual numbers are uncertain and should be read with "
              "their intervals.</p>"]
     shrink = taste_shrinkage(result)
     if len(shrink):
-        rows = [[r["attribute"], r["scale"], _num(r["population_sd"]), _num(r["sd_of_person_means"]),
+        latent = taste_units(result, latent=True)
+        rows = [[r["attribute"], latent[r["attribute"]], _num(r["population_sd"]), _num(r["sd_of_person_means"]),
                  _num(r["spread_ratio"]), _num(r["person_sd"]), _pct(max(0.0, r["information"]))]
                 for r in shrink.to_dict("records")]
-        parts.append(_table(["term", "scale", "population SD", "SD of respondents' means", "ratio",
+        parts.append(_table(["term", "unit (SDs)", "population SD", "SD of respondents' means", "ratio",
                              "typical person posterior SD", "share of spread explained by own choices"], rows,
                             numeric=[2, 3, 4, 5, 6]))
         parts.append("<p class='caption'>A ratio near 1 (and a share near 100 %) means respondents' own choices pin "
                      "down their tastes; near 0, individual estimates mostly repeat the population mean and should "
                      "not be used to tell people apart.</p>")
-    plot = _caterpillar(result, persons)
+    plot = _caterpillar(result, persons, coefficient_units(result))
     if plot:
         parts.append(plot)
         parts.append(f"<p class='caption'>Each respondent's posterior mean and {100 * prob:g} % equal-tailed "
-                     "interval, sorted.</p>")
+                     "interval of their utility coefficient (the unit is on each panel's axis), sorted.</p>")
     return "".join(parts)
 
 
@@ -408,7 +449,6 @@ def _scenario_section(result: ChoiceFit, market: Any, prob: float, csv: dict[str
         read_market,
         sensitivity,
     )
-    from ..analysis.wtp import price_attribute
 
     frame = read_market(market)
     tables = {}
@@ -455,9 +495,9 @@ def _scenario_section(result: ChoiceFit, market: Any, prob: float, csv: dict[str
         else:
             rows = [[r["changed"], r["share_of"], r["kind"], _interval(r)] for r in el.to_dict("records")]
             parts += [f"<h3>Elasticities with respect to {_e(price)}</h3>",
-                      _table([f"{price} of", "share of", "kind", f"elasticity [{pct} HDI]"], rows),
-                      f"<p class='caption'>The % change in the share of an alternative for a 1 % rise in the {_e(price)} "
-                      "of one alternative (own: its own share; cross: the others').</p>"]
+                      _table([f"{price} of", "share of", "kind", f"elasticity, % per % [{pct} HDI]"], rows),
+                      f"<p class='caption'>The % change in the share of an alternative for a 1 % rise in the "
+                      f"{_e(price)} of one alternative (own: its own share; cross: the others').</p>"]
             first = str(el["changed"].iloc[0])
             curve = sensitivity(result, frame, alternative=first, attribute=price, prob=prob)
             parts.append(_sensitivity_plot(curve, price, first))
@@ -474,8 +514,10 @@ _CAUTIONS = [
     "form are assumptions. Intervals say nothing about error in those assumptions.",
     "Predictions for attribute values outside the ranges of the design are extrapolation; the report flags them, "
     "but even inside the ranges, combinations never shown to respondents are less certain.",
-    "Willingness to pay is a ratio of two coefficients; where the price coefficient can be near zero its means are "
-    "withheld and only medians and quantiles are reported.",
+    "Willingness to pay is a ratio of two coefficients. Where the price coefficient can be zero (a normal price "
+    "taste, or a fixed one whose posterior reaches zero) WTP has no mean: means are withheld and only medians and "
+    "quantiles are reported. With a lognormal price the mean exists and is reported, but a wide price distribution "
+    "puts it far from the median.",
 ]
 
 
