@@ -218,13 +218,15 @@ class DynamicsSpec:
     this alternative in their previous task); ``lag`` and ``lead`` add
     ``<attribute>_lag`` / ``<attribute>_lead`` (the value for the same
     alternative in the previous / next task). Rows where the lag or lead does not
-    exist (the first task, or an alternative absent from the neighbouring task)
-    follow ``first_task``: ``"drop"`` removes those tasks from estimation (counted
-    in the validation summary), ``"flag"`` keeps them with the missing value set
-    to 0 and marks them in the panel's ``lag_missing`` mask.
-    ``initial_conditions`` adds the person's first observed choice (and the
-    person means of the attributes in ``initial_means``) as person covariates
-    (Wooldridge 2005, J. Applied Econometrics 20(1)).
+    exist (the first task, a task next to one removed as invalid, or an
+    alternative absent from the neighbouring task) follow ``first_task``:
+    ``"drop"`` removes those tasks from estimation (counted in the validation
+    summary), ``"flag"`` keeps them with the missing value set to 0 and marks them
+    in the panel's ``lag_missing`` mask. ``initial_conditions`` adds the person's
+    first observed choice (and the person means of the attributes in
+    ``initial_means``) as person covariates (Wooldridge 2005, J. Applied
+    Econometrics 20(1)); the first task is then only the initial condition, out
+    of the likelihood under either policy.
     """
 
     lagged_choice: bool = False
