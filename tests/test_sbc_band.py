@@ -106,8 +106,6 @@ def test_band_is_cached_deterministic_and_rejects_bad_arguments():
     assert all(np.array_equal(a, b) for a, b in zip(first, second))
     second[1][0] = -1.0  # the caller's copy; the cached band is untouched
     assert cal.ecdf_band(100, 20, prob=0.99)[1][0] >= 0
-    with pytest.warns(DeprecationWarning, match="n_sim"):
-        cal.ecdf_band(100, 20, prob=0.99, n_sim=1000)
     with pytest.raises(SpecError, match="prob"):
         cal.ecdf_band(100, 20, prob=1.0)
     with pytest.raises(SpecError, match="n_fits"):

@@ -180,8 +180,7 @@ def _binned(ranks: np.ndarray, groups: list[np.ndarray], thin_to: int) -> tuple[
     return observed, expected
 
 
-def ecdf_band(n_fits: int, thin_to: int, *, prob: float = 0.99, n_sim: int | None = None,
-              seed: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def ecdf_band(n_fits: int, thin_to: int, *, prob: float = 0.99) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     r"""Simultaneous ``prob`` band for the ECDF of ``n_fits`` ranks uniform on ``0..thin_to``.
 
     The ECDF is evaluated at :math:`z_i = i/(L+1)`, :math:`i = 1..L`, where it is the
@@ -216,18 +215,12 @@ def ecdf_band(n_fits: int, thin_to: int, *, prob: float = 0.99, n_sim: int | Non
         :math:`L`; ranks run from 0 to L.
     prob : float, default 0.99
         Simultaneous coverage under uniform ranks.
-    n_sim, seed :
-        Deprecated and ignored (the band used to be set by simulation); passing
-        either warns.
 
     Returns
     -------
     z, lower, upper : ndarray, shape (thin_to,)
         Evaluation points and the band's bounds on the ECDF (counts divided by N).
     """
-    if n_sim is not None or seed is not None:
-        warnings.warn("ecdf_band no longer simulates: n_sim and seed are ignored and will be removed.",
-                      DeprecationWarning, stacklevel=2)
     _check_band_args(n_fits, thin_to, prob)
     lower, upper, _ = _band_counts(int(n_fits), int(thin_to), float(prob))
     z = np.arange(1, thin_to + 1) / (thin_to + 1)
@@ -317,8 +310,7 @@ def _band_coverage(lower: np.ndarray, upper: np.ndarray, n_fits: int, log_fact: 
     return float(mass.sum())
 
 
-def rank_uniformity(ranks: xr.DataArray, thin_to: int, *, alpha: float = 0.01, bins: int | None = None,
-                    n_sim: int | None = None, seed: int | None = None) -> xr.Dataset:
+def rank_uniformity(ranks: xr.DataArray, thin_to: int, *, alpha: float = 0.01, bins: int | None = None) -> xr.Dataset:
     """Test each parameter's ranks for uniformity on ``0..thin_to``.
 
     Parameters
@@ -339,8 +331,6 @@ def rank_uniformity(ranks: xr.DataArray, thin_to: int, *, alpha: float = 0.01, b
     bins : int, optional
         Chi-square bins (consecutive groups of rank values); by default about five
         fits expected per bin.
-    n_sim, seed :
-        Deprecated and ignored (the band is exact now); passing either warns.
 
     Returns
     -------
@@ -356,9 +346,6 @@ def rank_uniformity(ranks: xr.DataArray, thin_to: int, *, alpha: float = 0.01, b
     """
     from scipy import stats
 
-    if n_sim is not None or seed is not None:
-        warnings.warn("rank_uniformity no longer simulates the ECDF band: n_sim and seed are ignored and will be "
-                      "removed.", DeprecationWarning, stacklevel=2)
     if not 0 < alpha < 1:
         raise SpecError(f"alpha must be in (0, 1), got {alpha!r}.")
     values = np.asarray(ranks.transpose("fit", "parameter").values)
