@@ -434,6 +434,12 @@ def test_sharded_on_a_dask_cluster_gives_the_same_draws_as_in_process(ferry) -> 
         there = bl.sample_blocked(panel, spec, draws=6, tune=6, chains=1, seed=5, keep=keep,
                                   settings=bl.BlockedSettings(shards=2, chunk=16), client=client)
         assert len(client.scheduler_info()["workers"]) == 2
+        # through fit(): the same ChoiceFit as in process; a cluster with NUTS is refused, naming the method
+        a = hc.fit(panel, spec, method="blocked", draws=5, tune=5, chains=1, seed=2, progressbar=False)
+        b = hc.fit(panel, spec, method="blocked", draws=5, tune=5, chains=1, seed=2, progressbar=False, client=client)
+        np.testing.assert_array_equal(a.posterior["taste_sd"].values, b.posterior["taste_sd"].values)
+        with pytest.raises(SpecError, match="blocked sampler only"):
+            hc.fit(panel, spec, method="nuts", draws=5, tune=5, chains=1, client=client)
     for v in keep:
         np.testing.assert_array_equal(here.posterior[v].values, there.posterior[v].values)
 
