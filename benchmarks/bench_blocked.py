@@ -1,6 +1,7 @@
 """Blocked sampler on B3's design: ms per sweep, effective draws per sweep and R-hat of the population parameters.
 
     NUMBA_NUM_THREADS=2 python benchmarks/bench_blocked.py --persons 10000 --chains 4 --tune 500 --draws 1000
+    python benchmarks/bench_blocked.py --persons 10000 --chains 1 --tune 100 --draws 200 --dask-workers 2
 
 B3's panel (benchmarks/bench.py): benchmark_scenario(n_persons, 12 tasks, 4 alternatives, 5 correlated normal
 tastes, seed=1). Chains run one after another, each person pass on NUMBA_NUM_THREADS threads. Only the population
@@ -31,6 +32,9 @@ def main() -> None:
     p.add_argument("--asis-steps", type=int, default=2)
     p.add_argument("--seed", type=int, default=1)
     p.add_argument("--out", default=None)
+    p.add_argument("--dask-workers", type=int, default=0,
+                   help="also run one chain with the persons in one shard per worker of a local Dask cluster and "
+                        "print ms per sweep in process and sharded, their ratio, and whether the draws are identical")
     a = p.parse_args()
     sim = hc.benchmark_scenario(a.persons, 12, 4, 5, correlated=True, seed=1)
     panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
@@ -40,6 +44,9 @@ def main() -> None:
     spec = replace(spec, model=replace(spec.model, parameterization="centred"))
     prob = bl.blocked_problem(panel, spec)
     settings = bl.BlockedSettings(person_steps=a.person_steps, asis_steps=a.asis_steps)
+    if a.dask_workers:
+        _sharding_overhead(prob, settings, a)
+        return
     res, times, cpu = [], [], []
     with _one_blas_thread():
         bl.run_chain(prob, np.random.default_rng(0), draws=2, tune=2, settings=settings, keep_persons=False)  # compile
@@ -76,6 +83,38 @@ def main() -> None:
     if a.out:
         with open(a.out, "w") as f:
             json.dump(out, f, indent=1)
+
+
+def _sharding_overhead(prob, settings, a) -> None:  # type: ignore[no-untyped-def]
+    """One chain in this process, then the same chain with its persons on Dask workers: ms per sweep of each."""
+    from dataclasses import replace
+
+    import distributed
+
+    from hierchoice.inference import blocked as bl
+    from hierchoice.inference.blocked.chain import _one_blas_thread
+    from hierchoice.validation.distributed import local_cluster
+
+    sweeps = a.tune + a.draws
+    child = np.random.SeedSequence(a.seed).spawn(1)[0]
+    with _one_blas_thread():
+        t0 = time.perf_counter()
+        here = bl.run_chain(prob, np.random.default_rng(child), draws=a.draws, tune=a.tune, settings=settings,
+                            keep_persons=False)
+        t_here = time.perf_counter() - t0
+    sharded = replace(settings, shards=a.dask_workers)
+    with local_cluster(a.dask_workers) as cluster, distributed.Client(cluster) as client:
+        bl.run_chain(prob, np.random.default_rng(0), draws=2, tune=2, settings=sharded, keep_persons=False,
+                     client=client)  # workers compile (or load) the kernels
+        t0 = time.perf_counter()
+        there = bl.run_chain(prob, np.random.default_rng(child), draws=a.draws, tune=a.tune, settings=sharded,
+                             keep_persons=False, client=client)
+        t_there = time.perf_counter() - t0
+    same = all(np.array_equal(here[k], there[k]) for k in ("mu_std", "L"))
+    print(json.dumps({"persons": a.persons, "sweeps": sweeps, "dask_workers": a.dask_workers,
+                      "ms_per_sweep_in_process": 1000 * t_here / sweeps,
+                      "ms_per_sweep_sharded": 1000 * t_there / sweeps,
+                      "sharded_over_in_process": t_there / t_here, "identical_draws": same}, indent=1))
 
 
 if __name__ == "__main__":

@@ -47,7 +47,8 @@ def _cmd_fit(args: argparse.Namespace) -> int:
     result = fit(panel, spec, draws=args.draws, tune=args.tune, chains=args.chains, seed=args.seed,
                  backend=args.backend, progressbar=not args.quiet,
                  method=_fit_method(args),
-                 person_batch=args.person_batch if args.person_batch is not None else "auto")
+                 person_batch=args.person_batch if args.person_batch is not None else "auto",
+                 client=args.scheduler)
     out = save_fit(result, args.out)
     print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
     print(result.population().to_string(float_format=lambda v: f"{v:.4g}"))
@@ -222,6 +223,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--person-batch", type=whole_number_option(1), default=None, metavar="N",
                    help="with --approximate: persons per random batch (default: 500 when the panel has over "
                         "1000 persons, else all)")
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="with the blocked sampler: run the person block on this Dask cluster (e.g. "
+                        "tcp://host:8786), one shard of persons per worker; the draws are the same as without it")
     p.set_defaults(func=_cmd_fit)
 
     p = sub.add_parser("check", help="convergence verdict, predictive checks and LOO of a results folder")

@@ -13,6 +13,8 @@ import hierchoice as hc
 from hierchoice.exceptions import SpecError
 from hierchoice.inference import blocked as bl
 from hierchoice.inference.blocked.kernels import person_loglik, person_loglik_grad
+from hierchoice.inference.blocked.problem import PopulationState
+from hierchoice.inference.blocked.shard import LocalShards
 from hierchoice.inference.blocked.updates import (
     _asis_terms,
     _entries,
@@ -46,6 +48,15 @@ def covariate_panel():  # type: ignore[no-untyped-def]
                             covariates={"age": {"x1": 0.3}}, seed=3)
     panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
     return sim, panel, _centred(sim.spec)
+
+
+def _local(prob, st, shards=1):  # type: ignore[no-untyped-def]
+    """The population half of ``st`` and in-process shards holding its persons (state set by hand)."""
+    loc = LocalShards(prob, (1, 2), shards)
+    for sh in loc.shards:
+        a, b = sh.start, sh.stop
+        sh.state = bl.BlockedState(mu_free=st.mu_free, gamma=st.gamma, L=st.L, eta=st.eta[a:b].copy(), h=st.h[a:b].copy())
+    return PopulationState(mu_free=st.mu_free.copy(), gamma=st.gamma.copy(), L=st.L.copy()), loc
 
 
 def _random_state(prob, rng):  # type: ignore[no-untyped-def]
@@ -206,11 +217,14 @@ def test_interweaving_gradient_matches_finite_differences(which, request) -> Non
     rows, cols = _entries(prob)
     e = rng.normal(0, 1, st.eta.shape)
     x = np.concatenate([st.L[rows, cols], st.mu_free])
-    lp, grad, G, _, _ = _asis_terms(prob, st, e, x)
-    assert _asis_terms(prob, st, e, x, metric=False)[0] == pytest.approx(lp, abs=1e-9)
+    pop, shards = _local(prob, st)
+    shards.call("asis_begin", pop.mu_free, pop.gamma, pop.L)
+    shards.shards[0].e = e
+    lp, grad, G = _asis_terms(prob, pop, shards, x)
+    assert _asis_terms(prob, pop, shards, x, metric=False)[0] == pytest.approx(lp, abs=1e-9)
     eps = 1e-6
-    fd = np.array([(_asis_terms(prob, st, e, x + eps * np.eye(x.size)[i])[0]
-                    - _asis_terms(prob, st, e, x - eps * np.eye(x.size)[i])[0]) / (2 * eps)
+    fd = np.array([(_asis_terms(prob, pop, shards, x + eps * np.eye(x.size)[i])[0]
+                    - _asis_terms(prob, pop, shards, x - eps * np.eye(x.size)[i])[0]) / (2 * eps)
                    for i in range(x.size)])
     np.testing.assert_allclose(grad, fd, rtol=1e-5, atol=1e-5)
     assert np.all(np.linalg.eigvalsh(G) > 0)
@@ -223,10 +237,12 @@ def test_location_gradient_matches_finite_differences(which, request) -> None:  
     prob = bl.blocked_problem(panel, spec)
     st = _random_state(prob, np.random.default_rng(13))
     x = np.concatenate([st.mu_free, st.gamma.reshape(-1)])
-    _, grad = _location_terms(prob, st, x)
+    pop, shards = _local(prob, st)
+    _, grad = _location_terms(prob, pop, shards, x)
     eps = 1e-6
-    fd = np.array([(_location_terms(prob, st, x + eps * np.eye(x.size)[i])[0]
-                    - _location_terms(prob, st, x - eps * np.eye(x.size)[i])[0]) / (2 * eps) for i in range(x.size)])
+    fd = np.array([(_location_terms(prob, pop, shards, x + eps * np.eye(x.size)[i])[0]
+                    - _location_terms(prob, pop, shards, x - eps * np.eye(x.size)[i])[0]) / (2 * eps)
+                   for i in range(x.size)])
     np.testing.assert_allclose(grad, fd, rtol=1e-5, atol=1e-5)
 
 
@@ -307,9 +323,10 @@ def test_conjugate_means_match_normal_normal_posterior() -> None:
     mean = cov @ Q @ state.eta.sum(0)
     n = 4000
     draws = np.empty((n, prob.n_attributes))
+    pop, shards = _local(prob, state)
     for i in range(n):
-        _location_conjugate(prob, state, rng)
-        draws[i] = state.mu_free
+        _location_conjugate(prob, pop, shards, rng)
+        draws[i] = pop.mu_free
     sd = np.sqrt(np.diag(cov))
     z = (draws.mean(0) - mean) / (sd / np.sqrt(n))
     assert np.all(np.abs(z) < 3.29), z
@@ -334,9 +351,10 @@ def test_covariance_step_matches_quadrature_of_the_sd_conditional(covariate_pane
     resid = st.eta - bl.locations(prob, st.mu_free, st.gamma)[:, prob.rnd]
     n = resid.shape[0]
     draws = np.empty((4000, prob.n_random))
+    pop, shards = _local(prob, st)
     for i in range(draws.shape[0]):
-        _update_covariance(prob, st, rng, steps=1)
-        draws[i] = np.diag(st.L)
+        _update_covariance(prob, pop, shards, rng, steps=1)
+        draws[i] = np.diag(pop.L)
     for k in range(prob.n_random):
         skk, s = float(resid[:, k] @ resid[:, k]), float(prob.sd_sd[k])
 
@@ -356,15 +374,17 @@ def test_likelihood_cache_matches_the_state(ferry) -> None:  # type: ignore[no-u
     _, panel, spec = ferry
     prob = bl.blocked_problem(panel, spec)
     rng = np.random.default_rng(5)
-    st = bl.initial_state(prob, rng)
+    shards = LocalShards(prob, (3, 4))
+    pop = bl.initial_state(prob, rng, shards)
     settings = bl.BlockedSettings()
     for i in range(30):
-        bl.sweep(prob, st, rng, settings, (i + 1.0) ** -0.6 if i < 20 else None, [] if i < 20 else None)
+        bl.sweep(prob, pop, shards, rng, settings, (i + 1.0) ** -0.6 if i < 20 else None, [] if i < 20 else None)
+    st = shards.shards[0].state
     for step in range(6):
         if step % 2:
-            _update_persons(prob, st, rng, 1, None, "information")
+            _update_persons(prob, pop, shards, 1, None, "information")
         else:
-            bl.sweep(prob, st, rng, settings, None, None)  # ends with the interweaving step
+            bl.sweep(prob, pop, shards, rng, settings, None, None)  # ends with the interweaving step
         assert st.cache is not None
         beta = bl.person_betas(prob, st)
         ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
@@ -374,6 +394,54 @@ def test_likelihood_cache_matches_the_state(ferry) -> None:  # type: ignore[no-u
 
 
 # ----------------------------------------------------------------------------- whole runs
+
+
+def test_draws_do_not_depend_on_how_the_persons_are_sharded() -> None:
+    """Same seed, persons in 1 or 3 in-process shards (chunks of 8 persons here): identical draws, bit for bit.
+
+    Every per-person sum is added chunk by chunk in order and the persons' random numbers are drawn per chunk
+    (hierchoice.inference.blocked.shard), so splitting the persons cannot change a draw.
+    """
+    from hierchoice.inference.blocked import shard as sh
+
+    sim = hc.ferry_scenario(45, n_tasks=5, seed=4)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    prob = bl.blocked_problem(panel, _centred(sim.spec))
+    assert sh.shard_bounds(45, 3, 8) == [(0, 16), (16, 32), (32, 45)]
+    runs = []
+    for shards in (1, 3):
+        rng = np.random.default_rng(4)
+        loc = LocalShards(prob, (7, 8), shards, chunk=8)
+        pop = bl.initial_state(prob, rng, loc)
+        for i in range(12):
+            bl.sweep(prob, pop, loc, rng, bl.BlockedSettings(), (i + 1.0) ** -0.6 if i < 6 else None,
+                     [] if i < 6 else None)
+        runs.append((pop.mu_free, pop.L, loc.gather_eta()))
+    for a, b in zip(*runs, strict=True):
+        np.testing.assert_array_equal(a, b)
+
+
+def test_sharded_on_a_dask_cluster_gives_the_same_draws_as_in_process(ferry) -> None:  # type: ignore[no-untyped-def]
+    """The person block on a LocalCluster of 2 workers (one actor per shard): the same draws as in one process."""
+    distributed = pytest.importorskip("distributed")
+    from hierchoice.validation.distributed import local_cluster
+
+    _, panel, spec = ferry
+    keep = ["taste_mean", "taste_sd", "taste_corr", "person_taste"]
+    here = bl.sample_blocked(panel, spec, draws=6, tune=6, chains=1, seed=5, keep=keep,
+                             settings=bl.BlockedSettings(chunk=16))
+    with local_cluster(2) as cluster, distributed.Client(cluster) as client:
+        there = bl.sample_blocked(panel, spec, draws=6, tune=6, chains=1, seed=5, keep=keep,
+                                  settings=bl.BlockedSettings(shards=2, chunk=16), client=client)
+        assert len(client.scheduler_info()["workers"]) == 2
+        # through fit(): the same ChoiceFit as in process; a cluster with NUTS is refused, naming the method
+        a = hc.fit(panel, spec, method="blocked", draws=5, tune=5, chains=1, seed=2, progressbar=False)
+        b = hc.fit(panel, spec, method="blocked", draws=5, tune=5, chains=1, seed=2, progressbar=False, client=client)
+        np.testing.assert_array_equal(a.posterior["taste_sd"].values, b.posterior["taste_sd"].values)
+        with pytest.raises(SpecError, match="blocked sampler only"):
+            hc.fit(panel, spec, method="nuts", draws=5, tune=5, chains=1, client=client)
+    for v in keep:
+        np.testing.assert_array_equal(here.posterior[v].values, there.posterior[v].values)
 
 
 def test_same_seed_same_draws_different_seed_different(ferry) -> None:  # type: ignore[no-untyped-def]

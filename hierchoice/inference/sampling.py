@@ -166,6 +166,7 @@ def fit(
     method: str | None = None,
     advi_iterations: int = 15_000,
     person_batch: int | str | None = "auto",
+    client: Any = None,
 ) -> ChoiceFit:
     """Sample the panel mixed logit of ``panel`` with NUTS (or approximate it with ADVI).
 
@@ -205,6 +206,13 @@ def fit(
         many persons the panel has. ``"auto"`` uses :data:`AUTO_PERSON_BATCH`
         persons when the panel has more than twice that many, else the whole panel;
         ``None`` always uses the whole panel.
+    client : distributed.Client or str, optional
+        Blocked sampler only: run the person block on this Dask cluster (a ``Client``
+        or a scheduler address such as ``"tcp://host:8786"``), the persons split into
+        one shard per worker, each worker keeping its shard's data and latent tastes
+        and returning only sums per sweep. The draws are the same as in one process
+        (``docs/blocked.md``, "Beyond one machine"). Workers should run one thread
+        each with the variables of :data:`hierchoice.validation.distributed.SINGLE_THREAD_ENV`.
 
     Returns
     -------
@@ -221,7 +229,10 @@ def fit(
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
                               target_accept=target_accept, cores=cores, method=method).for_method(method)
     if method == "blocked":
-        return _fit_blocked(panel, spec, progressbar=progressbar)
+        return _fit_blocked(panel, spec, progressbar=progressbar, client=client)
+    if client is not None:
+        raise SpecError(f"a Dask cluster (client=, fit --scheduler) serves the blocked sampler only, and this fit's "
+                        f"method is {method!r}: ask for method='blocked' (fit --method blocked), or drop the cluster.")
     s = spec.sampling
     panel = panel.with_spec(spec)  # the spec's tastes, not those the panel was validated with
     chosen_backend = resolve_backend(s.backend)
@@ -285,11 +296,12 @@ def choose_method(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Pat
     return "nuts" if layout.wtp_space or not layout.random else "blocked"
 
 
-def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool) -> ChoiceFit:
+def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool, client: Any = None) -> ChoiceFit:
     """``fit(..., method="blocked")``: the blocked sampler, the same result object as NUTS."""
+    import contextlib
     from dataclasses import replace
 
-    from .blocked import METHOD_NAME, sample_blocked
+    from .blocked import METHOD_NAME, BlockedSettings, sample_blocked
 
     # it samples the centred form's free variables (the posterior of the reported quantities is the same)
     spec = replace(spec, model=replace(spec.model, parameterization="centred"))
@@ -299,8 +311,13 @@ def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool) -> Choice
     keep = [v for v in REPORTED_VARS if s.store_person_draws or v not in ("person_taste", "person_wtp")]
     t0 = time.perf_counter()
     log.info("sampling %s chains x %s draws (%s tune) with the blocked sampler", s.chains, s.draws, s.tune)
-    idata = sample_blocked(panel, spec, draws=s.draws, tune=s.tune, chains=s.chains, seed=s.seed, keep=keep,
-                           progressbar=progressbar)
+    with contextlib.ExitStack() as stack:
+        settings = BlockedSettings()
+        if client is not None:
+            client = stack.enter_context(_dask_client(client))
+            settings = replace(settings, shards=max(1, len(client.scheduler_info()["workers"])))
+        idata = sample_blocked(panel, spec, draws=s.draws, tune=s.tune, chains=s.chains, seed=s.seed, keep=keep,
+                               progressbar=progressbar, settings=settings, client=client)
     wall = time.perf_counter() - t0
     idata = _tidy_idata(idata, panel, keep)
     info = {"backend": "blocked", "draws": s.draws, "tune": s.tune, "chains": s.chains, "seed": s.seed,
@@ -310,6 +327,22 @@ def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool) -> Choice
     if result.has_person_draws:
         add_log_likelihood(result)
     return result
+
+
+def _dask_client(client: Any) -> Any:
+    """A context holding a ``distributed.Client``: the one given (left open), or one connected to an address."""
+    import contextlib
+
+    if not isinstance(client, str):
+        return contextlib.nullcontext(client)
+    try:
+        import distributed
+    except ImportError as exc:
+        raise SpecError('a Dask scheduler address needs dask.distributed: pip install "dask[distributed]"') from exc
+    try:
+        return distributed.Client(client, timeout=30)
+    except OSError as exc:
+        raise SpecError(f"cannot reach the Dask scheduler at {client!r}: {exc}") from exc
 
 
 def _tidy_idata(idata: Any, panel: ChoicePanel, keep: list[str]) -> Any:

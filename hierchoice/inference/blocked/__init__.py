@@ -47,6 +47,16 @@ those of NUTS. See ``docs/blocked.md``.
 from __future__ import annotations
 
 from .chain import BlockedSettings, initial_state, run_chain, sample_blocked, sweep
-from .problem import METHOD_NAME, BlockedProblem, BlockedState, blocked_problem, locations, log_density, person_betas
+from .problem import (
+    METHOD_NAME,
+    BlockedProblem,
+    BlockedState,
+    PopulationState,
+    blocked_problem,
+    locations,
+    log_density,
+    person_betas,
+)
+from .shard import CHUNK, LocalShards, PersonShard
 
-__all__ = ["METHOD_NAME", "BlockedProblem", "BlockedSettings", "BlockedState", "blocked_problem", "log_density", "sample_blocked", "initial_state", "locations", "person_betas", "run_chain", "sweep"]
+__all__ = ["CHUNK", "METHOD_NAME", "BlockedProblem", "BlockedSettings", "BlockedState", "LocalShards", "PersonShard", "PopulationState", "blocked_problem", "log_density", "sample_blocked", "initial_state", "locations", "person_betas", "run_chain", "sweep"]

@@ -1,6 +1,6 @@
 """Sweeps, warm-up and chains of the blocked sampler, and the draws as InferenceData.
 
-May import: :mod:`.updates`, :mod:`.problem`, :mod:`.kernels`, ``hierchoice.model``.
+May import: :mod:`.updates`, :mod:`.shard`, :mod:`.problem`, :mod:`.kernels`, ``hierchoice.model``.
 """
 
 from __future__ import annotations
@@ -16,13 +16,19 @@ from ..._backend import load_backend
 from ...data.panel import ChoicePanel
 from ...model.build import build_model
 from ...spec import Spec
-from .problem import BlockedProblem, BlockedState, blocked_problem, locations
+from .problem import BlockedProblem, PopulationState, blocked_problem
+from .shard import CHUNK, LocalShards
 from .updates import _asis, _location_conjugate, _location_mala, _update_covariance, _update_persons
 
 
 @dataclass(frozen=True)
 class BlockedSettings:
-    """Tuning of the sweep: MALA steps per person, random-walk steps of the location and ASIS blocks."""
+    """Tuning of the sweep: MALA steps per person, random-walk steps of the location and ASIS blocks.
+
+    ``shards``: how many pieces the persons are split into (``client``: on a Dask cluster; else in this
+    process). The draws do not depend on it (:mod:`.shard`); they do depend on ``chunk``, the persons per
+    chunk of the per-person random streams and sums.
+    """
 
     person_steps: int = 2
     location_steps: int = 3
@@ -30,60 +36,79 @@ class BlockedSettings:
     asis_steps: int = 2
     thin: int = 1
     precondition: str = "information"
+    shards: int = 1
+    chunk: int = CHUNK
 
 
-def initial_state(prob: BlockedProblem, rng: np.random.Generator) -> BlockedState:
+def chain_key(rng: np.random.Generator) -> tuple[int, int]:
+    """The key of a chain's per-chunk person streams, drawn from the chain's own generator."""
+    return tuple(int(v) for v in rng.integers(0, 2**63 - 1, size=2))  # type: ignore[return-value]
+
+
+def initial_state(prob: BlockedProblem, rng: np.random.Generator, shards: Any) -> PopulationState:
     """A dispersed start: means near 0, SDs at half their prior scale, persons at their means plus noise."""
-    K, r = prob.n_attributes, prob.n_random
+    K = prob.n_attributes
     mu_free = rng.normal(0.0, 0.3, K) * np.minimum(prob.mean_sd, 1.0)
     gamma = np.zeros((prob.n_covariates, prob.shifted.size))
     L = np.diag(0.5 * prob.sd_sd)
-    m = locations(prob, mu_free, gamma)[:, prob.rnd]
-    eta = np.ascontiguousarray(m + 0.1 * rng.standard_normal((prob.n_persons, r)) * (0.5 * prob.sd_sd))
-    return BlockedState(mu_free=mu_free, gamma=gamma, L=L, eta=eta, h=np.full(prob.n_persons, 0.5))
+    shards.call("start_chain", mu_free, gamma, L)
+    return PopulationState(mu_free=mu_free, gamma=gamma, L=L)
 
 
-def sweep(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, settings: BlockedSettings,
-          adapt_rate: float | None, history: list[np.ndarray] | None) -> None:
+def sweep(prob: BlockedProblem, state: PopulationState, shards: Any, rng: np.random.Generator,
+          settings: BlockedSettings, adapt_rate: float | None, history: list[np.ndarray] | None) -> None:
     """One sweep: persons, location, covariance, interweaving."""
-    _update_persons(prob, state, rng, settings.person_steps, adapt_rate, settings.precondition)
+    _update_persons(prob, state, shards, settings.person_steps, adapt_rate, settings.precondition)
     if prob.conjugate:
-        _location_conjugate(prob, state, rng)
+        _location_conjugate(prob, state, shards, rng)
     else:
-        _location_mala(prob, state, rng, settings.location_steps, adapt_rate, history)
-    _update_covariance(prob, state, rng, settings.covariance_steps)
+        _location_mala(prob, state, shards, rng, settings.location_steps, adapt_rate, history)
+    _update_covariance(prob, state, shards, rng, settings.covariance_steps)
     if settings.asis_steps:
-        _asis(prob, state, rng, settings.asis_steps, adapt_rate)
+        _asis(prob, state, shards, rng, settings.asis_steps, adapt_rate)
     state.sweep += 1
 
 
 STAT_NAMES = ("person_accept", "person_step_size", "location_accept", "cov_accept", "asis_accept", "asis_step_size")
 
 
+def make_shards(prob: BlockedProblem, key: tuple[int, ...], settings: BlockedSettings, client: Any = None) -> Any:
+    """The persons of one chain: in this process, or as actors on the Dask ``client``'s workers."""
+    if client is None:
+        return LocalShards(prob, key, settings.shards, settings.chunk)
+    from .distributed import DaskShards
+
+    return DaskShards(client, prob, key, settings.shards, settings.chunk)
+
+
 def run_chain(prob: BlockedProblem, rng: np.random.Generator, *, draws: int, tune: int,
               settings: BlockedSettings = BlockedSettings(), keep_persons: bool = True,
-              progress: str | None = None) -> dict[str, np.ndarray]:
+              progress: str | None = None, client: Any = None) -> dict[str, np.ndarray]:
     """Run one chain: ``tune`` adapting sweeps, then ``draws * thin`` sweeps keeping every ``thin``-th."""
-    state = initial_state(prob, rng)
-    history: list[np.ndarray] = []
-    r = prob.n_random
-    out: dict[str, list[Any]] = {k: [] for k in ("mu_std", "gamma_std", "L", "eta_std") + STAT_NAMES}
-    total = tune + draws * settings.thin
-    t0 = time.perf_counter()
-    for i in range(total):
-        tuning = i < tune
-        rate = (i + 1.0) ** -0.6 if tuning else None
-        sweep(prob, state, rng, settings, rate, history if tuning else None)
-        if not tuning and (i - tune + 1) % settings.thin == 0:
-            out["mu_std"].append(state.mu_free.copy())
-            out["gamma_std"].append(state.gamma.copy())
-            out["L"].append(state.L.copy())
-            if keep_persons:
-                out["eta_std"].append(state.eta.copy())
-            for k in STAT_NAMES:
-                out[k].append(state.stats.get(k, math.nan))
-        if progress is not None and (i + 1) % max(1, total // 10) == 0:
-            print(f"{progress}: sweep {i + 1}/{total} ({time.perf_counter() - t0:.1f} s)", flush=True)
+    shards = make_shards(prob, chain_key(rng), settings, client)
+    try:
+        state = initial_state(prob, rng, shards)
+        history: list[np.ndarray] = []
+        r = prob.n_random
+        out: dict[str, list[Any]] = {k: [] for k in ("mu_std", "gamma_std", "L", "eta_std") + STAT_NAMES}
+        total = tune + draws * settings.thin
+        t0 = time.perf_counter()
+        for i in range(total):
+            tuning = i < tune
+            rate = (i + 1.0) ** -0.6 if tuning else None
+            sweep(prob, state, shards, rng, settings, rate, history if tuning else None)
+            if not tuning and (i - tune + 1) % settings.thin == 0:
+                out["mu_std"].append(state.mu_free.copy())
+                out["gamma_std"].append(state.gamma.copy())
+                out["L"].append(state.L.copy())
+                if keep_persons:
+                    out["eta_std"].append(shards.gather_eta())
+                for k in STAT_NAMES:
+                    out[k].append(state.stats.get(k, math.nan))
+            if progress is not None and (i + 1) % max(1, total // 10) == 0:
+                print(f"{progress}: sweep {i + 1}/{total} ({time.perf_counter() - t0:.1f} s)", flush=True)
+    finally:
+        shards.close()
     res = {k: np.array(v) for k, v in out.items() if v}
     res["L"] = res["L"].reshape(-1, r, r)
     return res
@@ -145,7 +170,8 @@ def _one_blas_thread() -> Any:
 
 
 def sample_blocked(panel: ChoicePanel, spec: Spec, *, draws: int, tune: int, chains: int, seed: int | None,
-                   keep: list[str], progressbar: bool = False, settings: BlockedSettings = BlockedSettings()) -> Any:
+                   keep: list[str], progressbar: bool = False, settings: BlockedSettings = BlockedSettings(),
+                   client: Any = None) -> Any:
     """Sample the centred model of ``panel`` under ``spec`` with the blocked sampler; an InferenceData.
 
     The posterior holds the reported variables in ``keep`` (computed by the PyMC model
@@ -172,7 +198,8 @@ def sample_blocked(panel: ChoicePanel, spec: Spec, *, draws: int, tune: int, cha
         for c, child in enumerate(children):
             rng = np.random.default_rng(child)
             results.append(run_chain(prob, rng, draws=draws, tune=tune, settings=settings, keep_persons=keep_persons,
-                                     progress=f"blocked chain {c + 1}/{chains}" if progressbar else None))
+                                     progress=f"blocked chain {c + 1}/{chains}" if progressbar else None,
+                                     client=client))
     free = _free_dataset(prob, results, model)
     names = [v for v in keep if v in model.named_vars and (keep_persons or v not in ("person_taste", "person_wtp"))]
     post = _deterministics(free, names, model, prob)

@@ -68,19 +68,34 @@ class BlockedProblem:
 
 @dataclass
 class BlockedState:
-    """The free variables of the centred model (internal scale) and the adaptation state of one chain."""
+    """Persons' state (of a shard, or of the whole panel) with the population values it was last given.
 
-    mu_free: np.ndarray       # (attribute,) mu_std
-    gamma: np.ndarray         # (covariate, shifted) gamma_std
-    L: np.ndarray             # (random, random) lower Cholesky factor of Sigma (diagonal when independent)
-    eta: np.ndarray           # (person, random) eta_std
-    h: np.ndarray             # (person,) MALA step sizes
-    loc_scale: float = 0.5
-    loc_cov: np.ndarray | None = None
-    asis_scale: float = 0.5
+    ``mu_free`` (attribute,) ``mu_std``; ``gamma`` (covariate, shifted) ``gamma_std``; ``L`` (random, random) the
+    lower Cholesky factor of Sigma (diagonal when independent); ``eta`` (person, random) ``eta_std``; ``h``
+    (person,) MALA step sizes.
+    """
+
+    mu_free: np.ndarray
+    gamma: np.ndarray
+    L: np.ndarray
+    eta: np.ndarray
+    h: np.ndarray
     info: np.ndarray | None = None        # (person, random, random) frozen logit information (preconditioner)
     # (log-likelihood (person,), its eta-gradient (person, random)) at the current eta and fixed coefficients
     cache: tuple[np.ndarray, np.ndarray] | None = None
+    sweep: int = 0
+
+
+@dataclass
+class PopulationState:
+    """The population's free variables (internal scale) and the adaptation state of the population blocks."""
+
+    mu_free: np.ndarray       # (attribute,) mu_std
+    gamma: np.ndarray         # (covariate, shifted) gamma_std
+    L: np.ndarray             # (random, random) lower Cholesky factor of Sigma
+    loc_scale: float = 0.5
+    loc_cov: np.ndarray | None = None
+    asis_scale: float = 0.5
     asis_metric: np.ndarray | None = None  # the interweaving step's metric, frozen after warm-up
     sweep: int = 0
     stats: dict[str, float] = field(default_factory=dict)

@@ -1,6 +1,8 @@
-"""The blocks of one sweep: persons (MALA), location, covariance, and interweaving (ASIS).
+"""The population blocks of one sweep: persons (dispatch), location, covariance, and interweaving (ASIS).
 
-Each update leaves the joint posterior invariant. May import: :mod:`.problem`, :mod:`.kernels`.
+Each update leaves the joint posterior invariant. The persons live in shards (:mod:`.shard`): these
+functions send the population parameters and get back sums over persons. May import: :mod:`.problem`,
+:mod:`.shard`.
 """
 
 from __future__ import annotations
@@ -10,138 +12,94 @@ from typing import Any
 
 import numpy as np
 
-from .kernels import (
-    mala_persons,
-    person_loglik_grad,
-    person_loglik_grad_info,
-)
 from .problem import (
     MALA_TARGET,
     BlockedProblem,
-    BlockedState,
+    PopulationState,
     _cov_log_prior,
     _location_log_prior,
-    _person_information_eta,
     _sd_log_prior,
     _solve_lower,
     chol_log_prior,
-    locations,
 )
 
 
-def _update_persons(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
+def _update_persons(prob: BlockedProblem, pop: PopulationState, shards: Any, steps: int,
                     adapt_rate: float | None, precondition: str) -> None:
-    r"""MALA on every person's eta (one parallel pass); adapts the per-person step sizes while ``adapt_rate``.
+    """MALA on every person's eta, in the shards (:func:`.shard.update_persons`); records the block's statistics.
 
-    Preconditioner: :math:`\Sigma` (``"population"``), or :math:`(\Sigma^{-1} + \hat F_n)^{-1}`
-    (``"information"``) with :math:`\hat F_n` the person's logit information, recomputed at the
-    current state during warm-up and frozen afterwards, so that in the sampling phase it
-    depends only on :math:`\Sigma` (a conditioning variable of this block) and the data.
+    ``person_step_size`` is the geometric mean of the persons' step sizes (a sum, so the shards can add it).
     """
-    beta_fixed = locations(prob, state.mu_free, state.gamma)
-    m = np.ascontiguousarray(beta_fixed[:, prob.rnd])
-    L = np.ascontiguousarray(state.L)
-    Linv = _solve_lower(L, np.eye(prob.n_random))
-    Q = Linv.T @ Linv
-    if precondition == "information":
-        if state.info is None or (adapt_rate is not None and state.sweep % 10 == 0):
-            state.info = _person_information_eta(prob, state)
-        R = np.linalg.cholesky(Q[None, :, :] + state.info)
-    else:
-        R = np.broadcast_to(np.linalg.cholesky(Q), (prob.n_persons,) + Q.shape)
-    R = np.ascontiguousarray(R)
-    xi = rng.standard_normal((steps, prob.n_persons, prob.n_random))
-    log_u = np.log(rng.random((steps, prob.n_persons)))
-    accept = np.empty(prob.n_persons)
-    loglik = np.empty(prob.n_persons)
-    glik = np.empty((prob.n_persons, prob.n_random))
-    cache_ll, cache_g = state.cache if state.cache is not None else (loglik, glik)
-    mala_persons(prob.Dp, prob.maskp, prob.n_others, beta_fixed, state.eta, m, L, R, prob.rnd, prob.logn, prob.sign,
-                 state.h, xi, log_u, state.cache is not None, cache_ll, cache_g, accept, loglik, glik)
-    state.cache = (loglik, glik)
-    if adapt_rate is not None:  # Robbins-Monro on log h towards the target acceptance, person by person
-        state.h *= np.exp(adapt_rate * (accept - MALA_TARGET))
-        np.clip(state.h, 1e-4, 5.0, out=state.h)
-    state.stats["person_accept"] = float(accept.mean())
-    state.stats["person_step_size"] = float(np.median(state.h))
+    sums = shards.reduce("persons", pop.mu_free, pop.gamma, pop.L, pop.sweep, steps, adapt_rate, precondition)
+    pop.stats["person_accept"] = float(sums[0] / prob.n_persons)
+    pop.stats["person_step_size"] = float(math.exp(sums[1] / prob.n_persons))
 
 
-def _design_stats(prob: BlockedProblem, eta: np.ndarray) -> dict[str, np.ndarray]:
-    Z = prob.Z
-    return {"n": np.array(eta.shape[0]), "Se": eta.sum(0), "Sz": Z.sum(0), "Sez": eta.T @ Z, "Szz": Z.T @ Z}
-
-
-def _location_conjugate(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator) -> None:
+def _location_conjugate(prob: BlockedProblem, pop: PopulationState, shards: Any, rng: np.random.Generator) -> None:
     r"""Exact draw of (``mu_std``, ``gamma_std``) given eta and Sigma: Bayesian multivariate regression.
 
     With every taste random, :math:`m_n = A\tilde\mu + E\,\Gamma^\top z_n` (``A`` the linear
     constant centring, ``E`` placing the shifted columns), the conditional is normal with
     precision :math:`V_0^{-1} + \sum_n X_n^\top \Sigma^{-1} X_n` and mean
     precision\ :sup:`-1` :math:`\sum_n X_n^\top \Sigma^{-1}\eta_n`, computed from the sufficient
-    statistics :math:`\sum\eta_n, \sum\eta_n z_n^\top, \sum z_n, \sum z_n z_n^\top`.
+    statistics :math:`\sum\eta_n, \sum\eta_n z_n^\top, \sum z_n, \sum z_n z_n^\top` (Rossi, Allenby &
+    McCulloch 2005, ch. 2.12).
     """
     K = prob.n_attributes
     C, S = prob.n_covariates, prob.shifted.size
+    r = prob.n_random
     A = np.eye(K)
     if prob.centre is not None:
         A = A - prob.centre * prob.lin[None, :]
-    Q = np.linalg.inv(state.L @ state.L.T)  # rnd == all attributes here
-    st = _design_stats(prob, state.eta)
+    Q = np.linalg.inv(pop.L @ pop.L.T)  # rnd == all attributes here
+    v = shards.reduce("location_stats")
+    Se, v = v[:r], v[r:]
+    Sez, v = v[: r * C].reshape(r, C), v[r * C:]
+    Sz, Szz = v[:C], v[C:].reshape(C, C)
     E = np.zeros((K, S))
     E[prob.shifted, np.arange(S)] = 1.0
     d = K + C * S
     P = np.zeros((d, d))
     b = np.zeros(d)
-    P[:K, :K] = st["n"] * A.T @ Q @ A + np.diag(1.0 / prob.mean_sd**2)
-    b[:K] = A.T @ Q @ st["Se"]
+    P[:K, :K] = prob.n_persons * A.T @ Q @ A + np.diag(1.0 / prob.mean_sd**2)
+    b[:K] = A.T @ Q @ Se
     if C * S:
         QE = Q @ E
-        P[:K, K:] = np.kron(st["Sz"][None, :], A.T @ QE)
+        P[:K, K:] = np.kron(Sz[None, :], A.T @ QE)
         P[K:, :K] = P[:K, K:].T
-        P[K:, K:] = np.kron(st["Szz"], E.T @ QE) + np.eye(C * S) / prob.gamma_sd**2
-        b[K:] = (st["Sez"].T @ QE).reshape(-1)
+        P[K:, K:] = np.kron(Szz, E.T @ QE) + np.eye(C * S) / prob.gamma_sd**2
+        b[K:] = (Sez.T @ QE).reshape(-1)
     R = np.linalg.cholesky(P)
     mean = np.linalg.solve(R.T, np.linalg.solve(R, b))
     draw = mean + np.linalg.solve(R.T, rng.standard_normal(d))
-    state.mu_free = draw[:K]
-    state.gamma = draw[K:].reshape(C, S)
-    state.stats["location_accept"] = 1.0
+    pop.mu_free = draw[:K]
+    pop.gamma = draw[K:].reshape(C, S)
+    pop.stats["location_accept"] = 1.0
 
 
-def _location_terms(prob: BlockedProblem, state: BlockedState, x: np.ndarray) -> tuple[float, np.ndarray]:
+def _location_terms(prob: BlockedProblem, pop: PopulationState, shards: Any, x: np.ndarray) -> tuple[float, np.ndarray]:
     r"""Log full conditional of ``x`` = (``mu_std``, ``gamma_std`` flattened) and its gradient.
 
     Priors, the persons' normal density and, with fixed tastes, the full-data likelihood through
     the fixed coefficients :math:`\theta_{nk} = \mu_k + \gamma_k^\top z_n`. With
     :math:`D_{nk} = [\Sigma^{-1}(\eta_n - m_n)]_k` on random and :math:`\partial\ell_n/\partial\beta_{nk}`
-    on fixed columns, :math:`\partial/\partial\mu = \sum_n D_n`, :math:`\partial/\partial\gamma_{ck} =
-    \sum_n z_{nc} D_{nk}` and, through the constant centring :math:`\mu = \tilde\mu - C\bar\beta(\tilde\mu)`,
+    on fixed columns (:func:`.shard.location_parts`), :math:`\partial/\partial\mu = \sum_n D_n`,
+    :math:`\partial/\partial\gamma_{ck} = \sum_n z_{nc} D_{nk}` and, through the constant centring
+    :math:`\mu = \tilde\mu - C\bar\beta(\tilde\mu)`,
     :math:`\partial/\partial\tilde\mu = (I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu))^\top\partial/\partial\mu`.
     """
     K = prob.n_attributes
-    mu_free, gamma = x[:K], x[K:].reshape(prob.n_covariates, prob.shifted.size)
-    theta = locations(prob, mu_free, gamma)
-    resid = state.eta - theta[:, prob.rnd]
-    y = _solve_lower(state.L, resid.T)
-    D = np.zeros_like(theta)
-    D[:, prob.rnd] = _solve_lower(state.L, y, trans=1).T
-    lp = _location_log_prior(prob, mu_free, gamma) - 0.5 * float(np.sum(y * y))
-    if prob.fixed.size:
-        beta = theta.copy()
-        beta[:, prob.rnd] = np.where(prob.logn, prob.sign * np.exp(np.where(prob.logn, state.eta, 0.0)), state.eta)
-        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
-        lp += float(ll.sum())
-        D[:, prob.fixed] = g[:, prob.fixed]
-    grad_mu = D.sum(0)
-    if prob.centre is not None:
-        dcoef = np.where(prob.lin, 1.0, prob.coef_sign * np.exp(np.where(prob.lin, 0.0, mu_free)))
-        grad_mu = grad_mu - (prob.centre * dcoef[None, :]).T @ grad_mu
-    grad_mu -= mu_free / prob.mean_sd**2
-    grad_gamma = prob.Z.T @ D[:, prob.shifted] - gamma / prob.gamma_sd**2 if prob.shifted.size else gamma[:0]
+    C, S = prob.n_covariates, prob.shifted.size
+    mu_free, gamma = x[:K], x[K:].reshape(C, S)
+    v = shards.reduce("location_terms", mu_free, gamma, pop.L)
+    yy, ll, Dsum, ZD = v[0], v[1], v[2:2 + K], v[2 + K:].reshape(C, S)
+    lp = _location_log_prior(prob, mu_free, gamma) - 0.5 * float(yy) + float(ll)
+    grad_mu = _mean_jacobian(prob, mu_free).T @ Dsum - mu_free / prob.mean_sd**2
+    grad_gamma = ZD - gamma / prob.gamma_sd**2 if S else gamma[:0]
     return lp, np.concatenate([grad_mu, np.ravel(grad_gamma)])
 
 
-def _location_mala(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
+def _location_mala(prob: BlockedProblem, state: PopulationState, shards: Any, rng: np.random.Generator, steps: int,
                    adapt_rate: float | None, history: list[np.ndarray] | None) -> None:
     r"""MALA on (``mu_std``, ``gamma_std``) with the full-data gradient: the general case.
 
@@ -155,12 +113,12 @@ def _location_mala(prob: BlockedProblem, state: BlockedState, rng: np.random.Gen
     cov = state.loc_cov if state.loc_cov is not None else np.eye(d) * 0.01
     C = np.linalg.cholesky(cov + 1e-12 * np.eye(d))
     h = state.loc_scale
-    lp, grad = _location_terms(prob, state, x)
+    lp, grad = _location_terms(prob, state, shards, x)
     acc = 0.0
     for _ in range(steps):
         mean_f = x + 0.5 * h * h * (cov @ grad)
         prop = mean_f + h * (C @ rng.standard_normal(d))
-        lp_p, grad_p = _location_terms(prob, state, prop)
+        lp_p, grad_p = _location_terms(prob, state, shards, prop)
         a = 0.0
         if np.isfinite(lp_p):
             mean_b = prop + 0.5 * h * h * (cov @ grad_p)
@@ -177,8 +135,6 @@ def _location_mala(prob: BlockedProblem, state: BlockedState, rng: np.random.Gen
     state.mu_free, state.gamma = x[:K].copy(), x[K:].reshape(shape).copy()
     state.loc_scale = h
     state.stats["location_accept"] = acc / steps
-    if prob.fixed.size:
-        state.cache = None  # the fixed coefficients may have moved
     if history is not None:  # warm-up: preconditioner from the second half of the path so far
         history.append(x.copy())
         if len(history) >= 20 and len(history) % 10 == 0:
@@ -187,7 +143,8 @@ def _location_mala(prob: BlockedProblem, state: BlockedState, rng: np.random.Gen
             state.loc_cov = np.cov(np.array(history[len(history) // 2:]).T).reshape(d, d) + 1e-10 * np.eye(d)
 
 
-def _update_covariance(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int = 2) -> None:
+def _update_covariance(prob: BlockedProblem, state: PopulationState, shards: Any, rng: np.random.Generator,
+                       steps: int = 2) -> None:
     r"""Independence Metropolis–Hastings for Sigma with the conjugate proposal, corrected to the model's prior.
 
     Proposal: :math:`\Sigma^* \sim IW(\Psi_0 + S, \nu_0 + N)` (correlated) or
@@ -198,10 +155,9 @@ def _update_covariance(prob: BlockedProblem, state: BlockedState, rng: np.random
     :math:`2^n\prod_i L_{ii}^{\,n-i}` of :math:`L \mapsto LL^\top`. The likelihood cancels, so the
     cost is that of the scatter matrix :math:`S = \sum_n (\eta_n - m_n)(\eta_n - m_n)^\top`.
     """
-    theta = locations(prob, state.mu_free, state.gamma)
-    resid = state.eta - theta[:, prob.rnd]
-    n, r = resid.shape
-    S = resid.T @ resid
+    r = prob.n_random
+    n = prob.n_persons
+    S = shards.reduce("scatter", state.mu_free, state.gamma).reshape(r, r)
     acc = 0.0
     if prob.layout.correlated:
         from scipy.stats import invwishart
@@ -275,7 +231,7 @@ def _cov_conditional(prob: BlockedProblem, S: np.ndarray, n: int) -> Any:
     return rows, cols, diag, to_L, logp
 
 
-def _slice_covariance(prob: BlockedProblem, state: BlockedState, S: np.ndarray, n: int,
+def _slice_covariance(prob: BlockedProblem, state: PopulationState, S: np.ndarray, n: int,
                       rng: np.random.Generator, width: float = 0.5, max_steps: int = 20) -> None:
     """One sweep of univariate slice sampling (stepping out, shrinkage; Neal 2003) over the covariance coordinates.
 
@@ -364,21 +320,22 @@ def _mean_jacobian(prob: BlockedProblem, mu_free: np.ndarray) -> np.ndarray:
     return np.eye(K) - prob.centre * dcoef[None, :]
 
 
-def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.ndarray, metric: bool = True,
-                cached: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[Any, ...]:
+def _asis_terms(prob: BlockedProblem, state: PopulationState, shards: Any, x: np.ndarray, metric: bool = True,
+                use_cache: bool = False, slot: int = 0) -> tuple[Any, ...]:
     r"""Log conditional of ``x`` = (entries of ``L``, every free mean ``mu_std``) given ``e``, its gradient and a metric.
 
     Non-centred: :math:`\eta_n = m_n + L e_n` on the random columns, :math:`\beta_{nk} = \theta_{nk}` on the fixed
-    ones, with :math:`\theta_n = \mu(\tilde\mu) + \Gamma^\top z_n`. With :math:`\tilde g_n` the gradient of
-    :math:`\ell_n` in :math:`\theta_n` (:math:`J_n\nabla_\beta\ell_n`, :math:`J` the lognormal chain rule) the
-    gradient is :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
+    ones, with :math:`\theta_n = \mu(\tilde\mu) + \Gamma^\top z_n` and :math:`e_n` fixed in the shards
+    (:meth:`.shard.PersonShard.asis_begin`). With :math:`\tilde g_n` the gradient of :math:`\ell_n` in
+    :math:`\theta_n` (:math:`J_n\nabla_\beta\ell_n`, :math:`J` the lognormal chain rule) the gradient is
+    :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
     :math:`\partial/\partial\tilde\mu = A^\top\sum_n \tilde g_n` (:func:`_mean_jacobian`, the constant centring).
     The metric is the expected information :math:`G_{(ab),(cd)} = \sum_n \tilde F_{n,ac}\, e_{nb} e_{nd}`,
     :math:`G_{(ab),\tilde\mu} = \sum_n \tilde F_{n,a\cdot}\,e_{nb}\,A`,
     :math:`G_{\tilde\mu\tilde\mu} = A^\top\sum_n\tilde F_n A` plus the priors' curvature (Girolami & Calderhead
-    2011, simplified manifold MALA). Returns ``(log density, gradient, metric or None, eta, (loglik,
-    eta-gradient) per person)``; ``-inf`` outside the support. ``cached``: the per-person log-likelihoods and
-    eta-gradients at ``x``, to skip the likelihood pass (only without the metric and without fixed tastes).
+    2011, simplified manifold MALA). Returns ``(log density, gradient, metric or None)``; ``-inf`` outside the
+    support. The shards keep the point's persons under ``slot`` (:meth:`.shard.PersonShard.asis_end` takes one);
+    ``use_cache``: reuse the likelihood cache (only at the current point, without the metric).
     """
     r, K = prob.n_random, prob.n_attributes
     rows, cols = _entries(prob)
@@ -386,50 +343,31 @@ def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.
     L = np.zeros((r, r))
     L[rows, cols] = x[:n_l]
     if np.any(np.diag(L) <= 0):
-        return -np.inf, x, None, state.eta, None
+        return -np.inf, x, None
     mu_free = x[n_l:]
-    theta = locations(prob, mu_free, state.gamma)
-    eta = theta[:, prob.rnd] + e @ L.T
-    beta = theta
-    beta[:, prob.rnd] = np.where(prob.logn, prob.sign * np.exp(np.where(prob.logn, eta, 0.0)), eta)
-    n = e.shape[0]
-    J = np.ones((n, K))
-    J[:, prob.rnd] = np.where(prob.logn, beta[:, prob.rnd], 1.0)
-    Ft = None
-    if metric:
-        ll, g, F = person_loglik_grad_info(prob.Dp, prob.maskp, prob.n_others, beta)
-        gt = g * J
-        Ft = F * J[:, :, None] * J[:, None, :]
-    elif cached is not None and not prob.fixed.size:
-        ll = cached[0]
-        gt = np.zeros((n, K))
-        gt[:, prob.rnd] = cached[1]
-    else:
-        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
-        gt = g * J
+    v = shards.reduce("asis_eval", L, mu_free, metric, use_cache, slot)
+    ll, v = v[0], v[1:]
+    GL, v = v[: r * r].reshape(r, r), v[r * r:]
+    gsum, v = v[:K], v[K:]
     A = _mean_jacobian(prob, mu_free)
     lp_l, grad_l, curv_l = _cov_prior_grad(prob, L)
-    lp = float(ll.sum()) + lp_l + _location_log_prior(prob, mu_free, state.gamma)
-    gr = gt[:, prob.rnd]
-    GL = gr.T @ e
-    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ gt.sum(0) - mu_free / prob.mean_sd**2])
-    lik = (ll, np.ascontiguousarray(gr))
-    if Ft is None:
-        return lp, grad, None, eta, lik
-    Fr = Ft[:, prob.rnd][:, :, prob.rnd]
-    M = (Fr.reshape(n, r * r).T @ (e[:, :, None] * e[:, None, :]).reshape(n, r * r)).reshape(r, r, r, r)  # [a,c,b,d]
+    lp = float(ll) + lp_l + _location_log_prior(prob, mu_free, state.gamma)
+    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ gsum - mu_free / prob.mean_sd**2])
+    if not metric:
+        return lp, grad, None
+    M, v = v[: r**4].reshape(r, r, r, r), v[r**4:]  # [a, c, b, d]
+    Mmu, Fsum = v[: r * K * r].reshape(r, K, r), v[r * K * r:].reshape(K, K)  # Mmu[a, c, b]
     G = np.zeros((x.size, x.size))
     G[:n_l, :n_l] = M[rows[:, None], rows[None, :], cols[:, None], cols[None, :]]
-    Mmu = (Ft[:, prob.rnd, :].reshape(n, r * K).T @ e).reshape(r, K, r)  # [a, c, b] = sum_n Ft[n,a,c] e[n,b]
     G[:n_l, n_l:] = Mmu[rows, :, cols] @ A
     G[n_l:, :n_l] = G[:n_l, n_l:].T
-    G[n_l:, n_l:] = A.T @ Ft.sum(0) @ A + np.diag(1 / prob.mean_sd**2)
+    G[n_l:, n_l:] = A.T @ Fsum @ A + np.diag(1 / prob.mean_sd**2)
     G[np.arange(n_l), np.arange(n_l)] += curv_l
     G += 1e-9 * np.eye(x.size) * max(1.0, float(np.abs(np.diag(G)).max()))
-    return lp, grad, G, eta, lik
+    return lp, grad, G
 
 
-def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, steps: int,
+def _asis(prob: BlockedProblem, state: PopulationState, shards: Any, rng: np.random.Generator, steps: int,
           adapt_rate: float | None) -> None:
     r"""Interweaving: simplified manifold MALA on ``L`` and the free means in the non-centred form.
 
@@ -446,24 +384,24 @@ def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, s
     r = prob.n_random
     rows, cols = _entries(prob)
     n_l = rows.size
-    theta = locations(prob, state.mu_free, state.gamma)
-    e = _solve_lower(state.L, (state.eta - theta[:, prob.rnd]).T).T  # (person, random)
+    shards.call("asis_begin", state.mu_free, state.gamma, state.L)
     x = np.concatenate([state.L[rows, cols], state.mu_free])
     h = state.asis_scale
     # warm-up: the metric at both ends (simplified manifold MALA); sampling: the metric frozen at the end of
     # warm-up (a fixed preconditioner), so each step needs only the likelihood and its gradient
     frozen = adapt_rate is None and state.asis_metric is not None
     if frozen:
-        lp, grad, _, eta, lik = _asis_terms(prob, state, e, x, metric=False, cached=state.cache)
+        lp, grad, _ = _asis_terms(prob, state, shards, x, metric=False, use_cache=True, slot=0)
         C = state.asis_metric
     else:
-        lp, grad, G, eta, lik = _asis_terms(prob, state, e, x)
+        lp, grad, G = _asis_terms(prob, state, shards, x, slot=0)
         C = np.linalg.cholesky(G)
+    cur = 0
     acc = 0.0
-    for _ in range(steps):
+    for step in range(1, steps + 1):
         mean_f = x + 0.5 * h * h * _chol_solve(C, grad)
         prop = mean_f + h * _solve_lower(C, rng.standard_normal(x.size)[:, None], trans=1)[:, 0]
-        lp_p, grad_p, G_p, eta_p, lik_p = _asis_terms(prob, state, e, prop, metric=not frozen)
+        lp_p, grad_p, G_p = _asis_terms(prob, state, shards, prop, metric=not frozen, slot=step)
         a = 0.0
         if np.isfinite(lp_p):
             C_p = C if frozen else np.linalg.cholesky(G_p)
@@ -473,7 +411,7 @@ def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, s
             log_a = lp_p - lp + log_q_b - log_q_f
             a = math.exp(min(0.0, log_a)) if np.isfinite(log_a) else 0.0
             if rng.random() < a:
-                x, lp, grad, C, eta, lik = prop, lp_p, grad_p, C_p, eta_p, lik_p
+                x, lp, grad, C, cur = prop, lp_p, grad_p, C_p, step
         else:
             rng.random()  # keep the stream aligned whether or not the proposal left the support
         acc += a
@@ -481,12 +419,11 @@ def _asis(prob: BlockedProblem, state: BlockedState, rng: np.random.Generator, s
             h = float(np.clip(h * math.exp(adapt_rate * (a - MALA_TARGET)), 1e-3, 2.0))
     if adapt_rate is not None:
         state.asis_metric = C
-    state.cache = lik
     L = np.zeros((r, r))
     L[rows, cols] = x[:n_l]
     state.L = L
     state.mu_free = x[n_l:].copy()
-    state.eta = np.ascontiguousarray(eta)
+    shards.call("asis_end", cur, state.L, state.mu_free)
     state.asis_scale = h
     state.stats["asis_accept"] = acc / max(steps, 1)
     state.stats["asis_step_size"] = h
