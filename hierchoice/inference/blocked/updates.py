@@ -26,6 +26,7 @@ from .problem import (
     _solve_lower,
     chol_log_prior,
     locations,
+    population_means,
 )
 
 
@@ -76,7 +77,8 @@ def _location_conjugate(prob: BlockedProblem, state: BlockedState, rng: np.rando
 
     With every taste random, :math:`m_n = A\tilde\mu + E\,\Gamma^\top z_n` (``A`` the linear
     constant centring, ``E`` placing the shifted columns), the conditional is normal with
-    precision :math:`V_0^{-1} + \sum_n X_n^\top \Sigma^{-1} X_n` and mean
+    precision :math:`A^\top V_0^{-1} A + \sum_n X_n^\top \Sigma^{-1} X_n` (the prior :math:`N(0, V_0)` is on
+    :math:`\mu = A\tilde\mu`) and mean
     precision\ :sup:`-1` :math:`\sum_n X_n^\top \Sigma^{-1}\eta_n`, computed from the sufficient
     statistics :math:`\sum\eta_n, \sum\eta_n z_n^\top, \sum z_n, \sum z_n z_n^\top`.
     """
@@ -92,7 +94,7 @@ def _location_conjugate(prob: BlockedProblem, state: BlockedState, rng: np.rando
     d = K + C * S
     P = np.zeros((d, d))
     b = np.zeros(d)
-    P[:K, :K] = st["n"] * A.T @ Q @ A + np.diag(1.0 / prob.mean_sd**2)
+    P[:K, :K] = A.T @ (st["n"] * Q + np.diag(1.0 / prob.mean_sd**2)) @ A  # the prior is on mu = A mu_free
     b[:K] = A.T @ Q @ st["Se"]
     if C * S:
         QE = Q @ E
@@ -116,7 +118,8 @@ def _location_terms(prob: BlockedProblem, state: BlockedState, x: np.ndarray) ->
     :math:`D_{nk} = [\Sigma^{-1}(\eta_n - m_n)]_k` on random and :math:`\partial\ell_n/\partial\beta_{nk}`
     on fixed columns, :math:`\partial/\partial\mu = \sum_n D_n`, :math:`\partial/\partial\gamma_{ck} =
     \sum_n z_{nc} D_{nk}` and, through the constant centring :math:`\mu = \tilde\mu - C\bar\beta(\tilde\mu)`,
-    :math:`\partial/\partial\tilde\mu = (I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu))^\top\partial/\partial\mu`.
+    :math:`\partial/\partial\tilde\mu = (I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu))^\top\partial/\partial\mu`,
+    the prior's :math:`-\mu/\sigma_0^2` included (the prior is on :math:`\mu`).
     """
     K = prob.n_attributes
     mu_free, gamma = x[:K], x[K:].reshape(prob.n_covariates, prob.shifted.size)
@@ -132,11 +135,8 @@ def _location_terms(prob: BlockedProblem, state: BlockedState, x: np.ndarray) ->
         ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
         lp += float(ll.sum())
         D[:, prob.fixed] = g[:, prob.fixed]
-    grad_mu = D.sum(0)
-    if prob.centre is not None:
-        dcoef = np.where(prob.lin, 1.0, prob.coef_sign * np.exp(np.where(prob.lin, 0.0, mu_free)))
-        grad_mu = grad_mu - (prob.centre * dcoef[None, :]).T @ grad_mu
-    grad_mu -= mu_free / prob.mean_sd**2
+    # the prior is on mu (population_means), so its gradient goes through the centring's Jacobian too
+    grad_mu = _mean_jacobian(prob, mu_free).T @ (D.sum(0) - population_means(prob, mu_free) / prob.mean_sd**2)
     grad_gamma = prob.Z.T @ D[:, prob.shifted] - gamma / prob.gamma_sd**2 if prob.shifted.size else gamma[:0]
     return lp, np.concatenate([grad_mu, np.ravel(grad_gamma)])
 
@@ -372,10 +372,12 @@ def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.
     ones, with :math:`\theta_n = \mu(\tilde\mu) + \Gamma^\top z_n`. With :math:`\tilde g_n` the gradient of
     :math:`\ell_n` in :math:`\theta_n` (:math:`J_n\nabla_\beta\ell_n`, :math:`J` the lognormal chain rule) the
     gradient is :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
-    :math:`\partial/\partial\tilde\mu = A^\top\sum_n \tilde g_n` (:func:`_mean_jacobian`, the constant centring).
+    :math:`\partial/\partial\tilde\mu = A^\top(\sum_n \tilde g_n - V_0^{-1}\mu)` (:func:`_mean_jacobian`, the
+    constant centring; :math:`V_0` the means' prior covariance, on :math:`\mu`).
     The metric is the expected information :math:`G_{(ab),(cd)} = \sum_n \tilde F_{n,ac}\, e_{nb} e_{nd}`,
     :math:`G_{(ab),\tilde\mu} = \sum_n \tilde F_{n,a\cdot}\,e_{nb}\,A`,
-    :math:`G_{\tilde\mu\tilde\mu} = A^\top\sum_n\tilde F_n A` plus the priors' curvature (Girolami & Calderhead
+    :math:`G_{\tilde\mu\tilde\mu} = A^\top(\sum_n\tilde F_n + V_0^{-1})A` with the means' prior covariance
+    :math:`V_0`, plus the covariance prior's curvature (Girolami & Calderhead
     2011, simplified manifold MALA). Returns ``(log density, gradient, metric or None, eta, (loglik,
     eta-gradient) per person)``; ``-inf`` outside the support. ``cached``: the per-person log-likelihoods and
     eta-gradients at ``x``, to skip the likelihood pass (only without the metric and without fixed tastes).
@@ -412,7 +414,8 @@ def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.
     lp = float(ll.sum()) + lp_l + _location_log_prior(prob, mu_free, state.gamma)
     gr = gt[:, prob.rnd]
     GL = gr.T @ e
-    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ gt.sum(0) - mu_free / prob.mean_sd**2])
+    mu = population_means(prob, mu_free)  # the prior is on mu: its gradient goes through A too
+    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ (gt.sum(0) - mu / prob.mean_sd**2)])
     lik = (ll, np.ascontiguousarray(gr))
     if Ft is None:
         return lp, grad, None, eta, lik
@@ -423,7 +426,7 @@ def _asis_terms(prob: BlockedProblem, state: BlockedState, e: np.ndarray, x: np.
     Mmu = (Ft[:, prob.rnd, :].reshape(n, r * K).T @ e).reshape(r, K, r)  # [a, c, b] = sum_n Ft[n,a,c] e[n,b]
     G[:n_l, n_l:] = Mmu[rows, :, cols] @ A
     G[n_l:, :n_l] = G[:n_l, n_l:].T
-    G[n_l:, n_l:] = A.T @ Ft.sum(0) @ A + np.diag(1 / prob.mean_sd**2)
+    G[n_l:, n_l:] = A.T @ (Ft.sum(0) + np.diag(1 / prob.mean_sd**2)) @ A
     G[np.arange(n_l), np.arange(n_l)] += curv_l
     G += 1e-9 * np.eye(x.size) * max(1.0, float(np.abs(np.diag(G)).max()))
     return lp, grad, G, eta, lik
