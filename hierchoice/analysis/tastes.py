@@ -268,7 +268,9 @@ def population_tastes(
 
         ``population_mean`` / ``population_sd``
             The posterior of the taste distribution's parameters :math:`\\mu_k,
-            \\sigma_k` (``scale`` says whether of the coefficient or of its log).
+            \\sigma_k` (``scale`` says whether of the coefficient or of its log). For a
+            lognormal taste they describe the log-taste: :math:`s_k e^{\\mu_k}` is the
+            *median* coefficient across people; its mean is ``mean_across_people``.
         ``mean_across_people``, ``median_across_people``, ``sd_across_people``, ``p10_across_people``, ..., ``share_positive``
             The implied distribution of the coefficient across people.
         ``correlation``

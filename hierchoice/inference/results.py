@@ -106,23 +106,31 @@ class ChoiceFit:
         return f"<p>{html.escape(repr(self))}</p>{table}"
 
 
-def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str, np.ndarray]:
+def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str, tuple[np.ndarray, str]]:
+    """The distribution across people of a lognormal taste ``sign * exp(eta)``, ``eta ~ N(mu, sd)``: row name, kind."""
     return {
-        "implied_mean": sign * np.exp(mu + sd**2 / 2),
-        "implied_median": sign * np.exp(mu),
-        "implied_sd": np.exp(mu + sd**2 / 2) * np.sqrt(np.expm1(sd**2)),
+        "mean_across_people": (sign * np.exp(mu + sd**2 / 2), "mean across people: s*exp(mu + sigma^2/2)"),
+        "median_across_people": (sign * np.exp(mu), "median across people: s*exp(mu)"),
+        "sd_across_people": (np.exp(mu + sd**2 / 2) * np.sqrt(np.expm1(sd**2)),
+                             "SD across people: exp(mu + sigma^2/2)*sqrt(exp(sigma^2) - 1)"),
     }
 
 
 def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
-    """Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals (``eti_low``, ``eti_high``).
+    r"""Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals (``eti_low``, ``eti_high``).
 
-    Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]``,
-    ``covariate_effect[<cov>,<attr>]`` and, for each attribute, the implied mean,
-    median and SD of the taste across people (for a lognormal taste
-    :math:`s\\exp(\\eta)`, :math:`\\eta\\sim N(\\mu,\\sigma)`: mean
-    :math:`s\\,e^{\\mu+\\sigma^2/2}`, median :math:`s\\,e^{\\mu}`, SD
-    :math:`e^{\\mu+\\sigma^2/2}\\sqrt{e^{\\sigma^2}-1}`).
+    Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]`` and
+    ``covariate_effect[<cov>,<attr>]``; the ``kind`` column says what each is. For a
+    lognormal taste :math:`\beta = s\exp(\eta)`, :math:`\eta\sim N(\mu,\sigma)`,
+    ``taste_mean`` and ``taste_sd`` are :math:`\mu` and :math:`\sigma` of the log-taste
+    :math:`\eta`, so :math:`s\,e^{\mu}` is the **median** coefficient across people, not its
+    mean; after the parameters come the taste's distribution across people:
+    ``mean_across_people[<attr>]`` (:math:`s\,e^{\mu+\sigma^2/2}`),
+    ``median_across_people[<attr>]`` (:math:`s\,e^{\mu}`) and ``sd_across_people[<attr>]``
+    (:math:`e^{\mu+\sigma^2/2}\sqrt{e^{\sigma^2}-1}`), each computed draw by draw (moments of
+    the lognormal: Johnson, Kotz & Balakrishnan 1994, *Continuous Univariate Distributions*
+    vol. 1, ch. 14). The columns ``mean``, ``sd``, ``eti_low``, ``eti_high`` always summarise the
+    posterior of the row's quantity.
     """
     if not 0 < prob < 1:
         raise SpecError(f"prob must be in (0, 1), got {prob!r}.")
@@ -139,13 +147,19 @@ def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
     mean = post["taste_mean"]
     sd = post["taste_sd"] if "taste_sd" in post else None
     for k, name in enumerate(layout.names):
-        m = mean.sel(attribute=name).values
-        add(f"taste_mean[{name}]", m, "population mean" + (" of log-taste" if layout.is_lognormal(k) else ""))
+        add(f"taste_mean[{name}]", mean.sel(attribute=name).values,
+            "mu: mean of log-taste; s*exp(mu) = median across people" if layout.is_lognormal(k) else "population mean")
     if sd is not None:
         for name in layout.random_names:
             k = layout.names.index(name)
             add(f"taste_sd[{name}]", sd.sel(random_attribute=name).values,
-                "population SD" + (" of log-taste" if layout.is_lognormal(k) else ""))
+                "sigma: SD of log-taste" if layout.is_lognormal(k) else "population SD")
+    for k, name in enumerate(layout.names):
+        if layout.is_lognormal(k):
+            m = mean.sel(attribute=name).values
+            s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
+            for key, (vals, kind) in _lognormal_moments(m, s_, layout.sign(k)).items():
+                add(f"{key}[{name}]", vals, kind)
     if "taste_corr" in post:
         names = layout.random_names
         for i in range(len(names)):
@@ -157,13 +171,6 @@ def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
             for a in post["covariate_effect"]["shifted_attribute"].values:
                 add(f"covariate_effect[{c},{a}]", post["covariate_effect"].sel(covariate=c, shifted_attribute=a).values,
                     "covariate shift of mean")
-    for k, name in enumerate(layout.names):
-        if not layout.is_lognormal(k):
-            continue
-        m = mean.sel(attribute=name).values
-        s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
-        for key, vals in _lognormal_moments(m, s_, layout.sign(k)).items():
-            add(f"{key}[{name}]", vals, f"taste across people ({key.replace('implied_', '')})")
     table = pd.DataFrame(rows).set_index("parameter")
     table.attrs["prob"] = prob
     return table

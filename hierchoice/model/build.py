@@ -199,11 +199,13 @@ def _constant_centre(panel: ChoicePanel, terms: tuple[Term, ...], scale: np.ndar
 
     The free parameter of a constant is :math:`\tilde a = a + \sum_k \bar\beta_k c_{ak}`,
     the utility contrast at the alternative's mean attribute levels, where
-    :math:`\bar\beta_k` is the population mean coefficient (:math:`s_k e^{\mu_k}` for a
-    lognormal taste). It is an exact change of variables of the population
-    parameters: it removes most of the posterior correlation between a constant and
-    the taste means when, as with an opt-out, the alternatives' attribute levels sit
-    far from the reference's.
+    :math:`\bar\beta_k` is the coefficient at the population location: :math:`\mu_k`
+    for a fixed or normal taste, :math:`s_k e^{\mu_k}` (the **median** coefficient
+    across people, not the mean) for a lognormal one. It is an exact change of
+    variables of the population parameters (see :func:`_free_means`): it removes
+    most of the posterior correlation between a constant and the taste means when,
+    as with an opt-out, the alternatives' attribute levels sit far from the
+    reference's.
     """
     const = [k for k, t in enumerate(terms) if t.kind == "constant"]
     if not const or spec.constants is None:
@@ -224,16 +226,71 @@ def _constant_centre(panel: ChoicePanel, terms: tuple[Term, ...], scale: np.ndar
     return centre if np.any(centre) else None
 
 
-def _centred_constants(mu_free, layout: ModelLayout):  # type: ignore[no-untyped-def]
-    """The constants' population means from their free (centred) parameters."""
+def _centring_shift(mu, layout: ModelLayout):  # type: ignore[no-untyped-def]
+    r""":math:`C\bar\beta(\mu)` over the last axis of ``mu``: the free constants minus the constants.
+
+    Only the slopes' entries of ``mu`` enter (the centring's columns of the constants are 0), so
+    the shift is the same whether it is computed from the population means :math:`\mu` or from
+    the free means :math:`\tilde\mu`, which agree on the slopes.
+    """
     load_backend()
     import pytensor.tensor as pt
 
     assert layout.constant_centre is not None
     n_k = len(layout.terms)
-    mean_coef = pt.stack([layout.sign(k) * pt.exp(mu_free[k]) if layout.is_lognormal(k) else mu_free[k]
-                          for k in range(n_k)])
-    return mu_free - pt.dot(pt.as_tensor_variable(layout.constant_centre), mean_coef)
+    lognormal = np.array([layout.is_lognormal(k) for k in range(n_k)])
+    sign = np.array([layout.sign(k) for k in range(n_k)])
+    # exp only of the lognormal columns: exp of a large linear mean would put inf * 0 into the gradient
+    mean_coef = pt.where(lognormal, sign * pt.exp(pt.where(lognormal, mu, 0.0)), mu)
+    return pt.dot(mean_coef, pt.as_tensor_variable(layout.constant_centre.T))
+
+
+def _centred_constants(mu_free, layout: ModelLayout):  # type: ignore[no-untyped-def]
+    r"""The population means :math:`\mu = \tilde\mu - C\bar\beta(\tilde\mu)` from the free ``mu_std``."""
+    return mu_free - _centring_shift(mu_free, layout)
+
+
+def _free_means(layout: ModelLayout, sigma: np.ndarray):  # type: ignore[no-untyped-def]
+    r"""The free means ``mu_std`` over ``attribute``, with the prior :math:`\mu_k \sim N(0, \text{sigma}_k)`.
+
+    Without constant centring the free means are the population means. With it, the free
+    constants are :math:`\tilde a = a + \sum_k \bar\beta_k c_{ak}` (:func:`_constant_centre`),
+    and the prior is still put on the **reported** means :math:`\mu` (constants :math:`a`
+    included), independent normals:
+
+    .. math:: p(\tilde\mu) = \prod_k N\big(\mu_k(\tilde\mu);\ 0,\ \text{sigma}_k\big).
+
+    This is an exact density on :math:`\tilde\mu`: the map :math:`\tilde\mu \mapsto \mu`
+    changes only the constants, by an amount that depends only on the slopes, so its
+    Jacobian :math:`I - C\,\mathrm{diag}\,\bar\beta'` is unit triangular (determinant 1).
+    Draws (prior predictive, simulation-based calibration) come from the same construction:
+    :math:`\mu \sim N(0, \mathrm{diag}(\text{sigma})^2)`, then :math:`\tilde\mu = \mu + C\bar\beta(\mu)`.
+    (Putting the normal prior on :math:`\tilde\mu` instead, as before, gave the reported
+    constants a prior far wider than documented: SD 7.5 instead of 2.5 on the ferry scenario.)
+    """
+    load_backend()
+    import pymc as pm
+    import pytensor.tensor as pt
+    from pytensor.tensor.type_other import NoneTypeT
+
+    if layout.constant_centre is None:
+        return pm.Normal("mu_std", 0.0, sigma, dims="attribute")
+
+    def dist(sigma, size):  # type: ignore[no-untyped-def]
+        # size: the batch shape in front of the (attribute,) core, or None / empty for one vector
+        batch = not (size is None or isinstance(size.type, NoneTypeT) or size.type.shape == (0,))
+        mu = pm.Normal.dist(0.0, sigma, size=pt.concatenate([size, sigma.shape[-1:]]) if batch else None)
+        return mu + _centring_shift(mu, layout)
+
+    def logp(value, sigma):  # type: ignore[no-untyped-def]
+        return pm.logp(pm.Normal.dist(0.0, sigma), _centred_constants(value, layout)).sum(axis=-1)
+
+    def support_point(rv, size, sigma):  # type: ignore[no-untyped-def]
+        zero = pt.zeros_like(rv)  # the prior's mode: every reported mean at 0
+        return zero + _centring_shift(zero, layout)
+
+    return pm.CustomDist("mu_std", sigma, dist=dist, logp=logp, support_point=support_point,
+                         signature="(k)->(k)", dims="attribute")
 
 
 def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> DifferenceData:
@@ -357,7 +414,7 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
     sd_sd = np.array([PRIOR_SD["log_sd"] if layout.is_lognormal(k) else PRIOR_SD["sd"] for k in rnd])
 
     with pm.Model(coords=coords) as model:
-        mu_free = pm.Normal("mu_std", 0.0, mean_sd * ps, dims="attribute")
+        mu_free = _free_means(layout, mean_sd * ps)
         mu = _centred_constants(mu_free, layout) if layout.constant_centre is not None else mu_free
         # theta: the (person, attribute) latent tastes, one vectorised expression (a (1, attribute)
         # row while nothing varies by person); lognormal columns are exponentiated below

@@ -40,7 +40,7 @@ class BlockedProblem:
     shifted: np.ndarray       # (shifted,) attribute index of each covariate-shifted mean
     logn: np.ndarray          # (random,) bool: lognormal
     sign: np.ndarray          # (random,) sign of each random taste's coefficient
-    mean_sd: np.ndarray       # (attribute,) prior SD of mu_std
+    mean_sd: np.ndarray       # (attribute,) prior SD of the population means mu (mu_std mapped by the centring)
     sd_sd: np.ndarray         # (random,) HalfNormal scale of the SDs
     gamma_sd: float
     lkj_eta: float
@@ -150,7 +150,7 @@ def population_means(prob: BlockedProblem, mu_free: np.ndarray) -> np.ndarray:
     .. math:: \mu = \tilde\mu - C\,\bar\beta(\tilde\mu), \qquad
               \bar\beta_k = s_k e^{\tilde\mu_k} \text{ (lognormal) or } \tilde\mu_k,
 
-    as :func:`hierchoice.model._centred_constants`.
+    as :func:`hierchoice.model.build._centred_constants`.
     """
     if prob.centre is None:
         return mu_free
@@ -217,7 +217,13 @@ def _cov_log_prior(prob: BlockedProblem, L: np.ndarray) -> float:
 
 
 def _location_log_prior(prob: BlockedProblem, mu_free: np.ndarray, gamma: np.ndarray) -> float:
-    return float(-0.5 * np.sum((mu_free / prob.mean_sd) ** 2) - 0.5 * np.sum(gamma**2) / prob.gamma_sd**2)
+    r"""Log prior of the free means and covariate effects (up to a constant), as :func:`hierchoice.model._free_means`.
+
+    The normal prior sits on the population means :math:`\mu(\tilde\mu)` (the reported constants, not
+    their centred free parameters); the centring's Jacobian is unit triangular, so no Jacobian term.
+    """
+    mu = population_means(prob, mu_free)
+    return float(-0.5 * np.sum((mu / prob.mean_sd) ** 2) - 0.5 * np.sum(gamma**2) / prob.gamma_sd**2)
 
 
 def _eta_log_density(L: np.ndarray, resid: np.ndarray) -> float:

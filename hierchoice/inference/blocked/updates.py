@@ -21,6 +21,7 @@ from .problem import (
     _sd_log_prior,
     _solve_lower,
     chol_log_prior,
+    population_means,
 )
 
 
@@ -40,7 +41,8 @@ def _location_conjugate(prob: BlockedProblem, pop: PopulationState, shards: Any,
 
     With every taste random, :math:`m_n = A\tilde\mu + E\,\Gamma^\top z_n` (``A`` the linear
     constant centring, ``E`` placing the shifted columns), the conditional is normal with
-    precision :math:`V_0^{-1} + \sum_n X_n^\top \Sigma^{-1} X_n` and mean
+    precision :math:`A^\top V_0^{-1} A + \sum_n X_n^\top \Sigma^{-1} X_n` (the prior :math:`N(0, V_0)` is on
+    :math:`\mu = A\tilde\mu`) and mean
     precision\ :sup:`-1` :math:`\sum_n X_n^\top \Sigma^{-1}\eta_n`, computed from the sufficient
     statistics :math:`\sum\eta_n, \sum\eta_n z_n^\top, \sum z_n, \sum z_n z_n^\top` (Rossi, Allenby &
     McCulloch 2005, ch. 2.12).
@@ -61,7 +63,7 @@ def _location_conjugate(prob: BlockedProblem, pop: PopulationState, shards: Any,
     d = K + C * S
     P = np.zeros((d, d))
     b = np.zeros(d)
-    P[:K, :K] = prob.n_persons * A.T @ Q @ A + np.diag(1.0 / prob.mean_sd**2)
+    P[:K, :K] = A.T @ (prob.n_persons * Q + np.diag(1.0 / prob.mean_sd**2)) @ A  # the prior is on mu = A mu_free
     b[:K] = A.T @ Q @ Se
     if C * S:
         QE = Q @ E
@@ -86,7 +88,8 @@ def _location_terms(prob: BlockedProblem, pop: PopulationState, shards: Any, x: 
     on fixed columns (:func:`.shard.location_parts`), :math:`\partial/\partial\mu = \sum_n D_n`,
     :math:`\partial/\partial\gamma_{ck} = \sum_n z_{nc} D_{nk}` and, through the constant centring
     :math:`\mu = \tilde\mu - C\bar\beta(\tilde\mu)`,
-    :math:`\partial/\partial\tilde\mu = (I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu))^\top\partial/\partial\mu`.
+    :math:`\partial/\partial\tilde\mu = (I - C\,\mathrm{diag}\,\bar\beta'(\tilde\mu))^\top\partial/\partial\mu`,
+    the prior's :math:`-\mu/\sigma_0^2` included (the prior is on :math:`\mu`).
     """
     K = prob.n_attributes
     C, S = prob.n_covariates, prob.shifted.size
@@ -94,7 +97,8 @@ def _location_terms(prob: BlockedProblem, pop: PopulationState, shards: Any, x: 
     v = shards.reduce("location_terms", mu_free, gamma, pop.L)
     yy, ll, Dsum, ZD = v[0], v[1], v[2:2 + K], v[2 + K:].reshape(C, S)
     lp = _location_log_prior(prob, mu_free, gamma) - 0.5 * float(yy) + float(ll)
-    grad_mu = _mean_jacobian(prob, mu_free).T @ Dsum - mu_free / prob.mean_sd**2
+    # the prior is on mu (population_means), so its gradient goes through the centring's Jacobian too
+    grad_mu = _mean_jacobian(prob, mu_free).T @ (Dsum - population_means(prob, mu_free) / prob.mean_sd**2)
     grad_gamma = ZD - gamma / prob.gamma_sd**2 if S else gamma[:0]
     return lp, np.concatenate([grad_mu, np.ravel(grad_gamma)])
 
@@ -329,11 +333,12 @@ def _asis_terms(prob: BlockedProblem, state: PopulationState, shards: Any, x: np
     (:meth:`.shard.PersonShard.asis_begin`). With :math:`\tilde g_n` the gradient of :math:`\ell_n` in
     :math:`\theta_n` (:math:`J_n\nabla_\beta\ell_n`, :math:`J` the lognormal chain rule) the gradient is
     :math:`\partial/\partial L_{ab} = \sum_n \tilde g_{na} e_{nb}` and
-    :math:`\partial/\partial\tilde\mu = A^\top\sum_n \tilde g_n` (:func:`_mean_jacobian`, the constant centring).
+    :math:`\partial/\partial\tilde\mu = A^\top(\sum_n \tilde g_n - V_0^{-1}\mu)` (:func:`_mean_jacobian`, the
+    constant centring; :math:`V_0` the means' prior covariance, on :math:`\mu`).
     The metric is the expected information :math:`G_{(ab),(cd)} = \sum_n \tilde F_{n,ac}\, e_{nb} e_{nd}`,
     :math:`G_{(ab),\tilde\mu} = \sum_n \tilde F_{n,a\cdot}\,e_{nb}\,A`,
-    :math:`G_{\tilde\mu\tilde\mu} = A^\top\sum_n\tilde F_n A` plus the priors' curvature (Girolami & Calderhead
-    2011, simplified manifold MALA). Returns ``(log density, gradient, metric or None)``; ``-inf`` outside the
+    :math:`G_{\tilde\mu\tilde\mu} = A^\top(\sum_n\tilde F_n + V_0^{-1})A`, plus the covariance prior's curvature
+    (Girolami & Calderhead 2011, simplified manifold MALA). Returns ``(log density, gradient, metric or None)``; ``-inf`` outside the
     support. The shards keep the point's persons under ``slot`` (:meth:`.shard.PersonShard.asis_end` takes one);
     ``use_cache``: reuse the likelihood cache (only at the current point, without the metric).
     """
@@ -352,7 +357,8 @@ def _asis_terms(prob: BlockedProblem, state: PopulationState, shards: Any, x: np
     A = _mean_jacobian(prob, mu_free)
     lp_l, grad_l, curv_l = _cov_prior_grad(prob, L)
     lp = float(ll) + lp_l + _location_log_prior(prob, mu_free, state.gamma)
-    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ gsum - mu_free / prob.mean_sd**2])
+    mu = population_means(prob, mu_free)  # the prior is on mu: its gradient goes through A too
+    grad = np.concatenate([GL[rows, cols] + grad_l, A.T @ (gsum - mu / prob.mean_sd**2)])
     if not metric:
         return lp, grad, None
     M, v = v[: r**4].reshape(r, r, r, r), v[r**4:]  # [a, c, b, d]
@@ -361,7 +367,7 @@ def _asis_terms(prob: BlockedProblem, state: PopulationState, shards: Any, x: np
     G[:n_l, :n_l] = M[rows[:, None], rows[None, :], cols[:, None], cols[None, :]]
     G[:n_l, n_l:] = Mmu[rows, :, cols] @ A
     G[n_l:, :n_l] = G[:n_l, n_l:].T
-    G[n_l:, n_l:] = A.T @ Fsum @ A + np.diag(1 / prob.mean_sd**2)
+    G[n_l:, n_l:] = A.T @ (Fsum + np.diag(1 / prob.mean_sd**2)) @ A
     G[np.arange(n_l), np.arange(n_l)] += curv_l
     G += 1e-9 * np.eye(x.size) * max(1.0, float(np.abs(np.diag(G)).max()))
     return lp, grad, G
