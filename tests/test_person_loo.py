@@ -17,11 +17,11 @@ import arviz as az
 import numpy as np
 import pytest
 import xarray as xr
-from scipy.integrate import cubature
+from scipy.integrate import cubature, quad_vec
 from scipy.special import logsumexp
 
 from hierchoice import ChoicePanel, SimAttribute, simulate_panel
-from hierchoice.diagnostics.loo import PERSON_LOGLIK, person_loo
+from hierchoice.diagnostics.loo import PERSON_LOGLIK, person_log_marginal, person_loo
 from hierchoice.inference.results import ChoiceFit
 from hierchoice.model.build import model_layout
 
@@ -125,11 +125,12 @@ def test_person_elpd_matches_adaptive_quadrature(k2: dict[str, Any], reference: 
     loo, est = person_loo(fit, n_sim=100, seed=0, return_estimate=True)
     # the issue's tolerance: total person-level elpd within 0.5 of the quadrature value
     assert abs(float(loo["elpd_loo"]) - ref_elpd) < 0.5
-    # every value within its stated Monte Carlo error: the 6,000 standardised errors have spread near 1 (the SD of
-    # the sample SD of 6,000 normal values is 0.009, so 0.85..1.15 is over 15 of those SDs wide), and none beyond 5.5
+    # the stated error of each value is honest: the 6,000 standardised errors have spread near 1 (the SD of the
+    # sample SD of 6,000 normal values is 0.009, so 0.85..1.15 is over 15 of those SDs wide); single values are
+    # checked for gross errors only (see the fixed-taste test below for why)
     z = (est["log_marginal"].values - reference) / est["mc_se"].values
     assert 0.85 < float(np.std(z)) < 1.15
-    assert float(np.max(np.abs(z))) < 5.5
+    assert float(np.max(np.abs(z))) < 10.0
     # negative control: the plain population Monte Carlo estimator at the same S misses by far more than 0.5
     assert _elpd(fit, _plain_monte_carlo(k2, 100, seed=1)) - ref_elpd < -2.0
 
@@ -146,3 +147,59 @@ def test_elpd_mc_se_matches_the_spread_over_runs(k2: dict[str, Any], reference: 
     assert 0.7 < float(np.mean(stated)) / spread < 1.3
     # no bias left: the mean over 40 runs is within 3 of its standard errors of the quadrature value
     assert abs(float(np.mean(elpd)) - _elpd(fit, reference)) < 3 * spread / np.sqrt(40)
+
+
+def _panel_loglik(panel: ChoicePanel, beta: np.ndarray) -> np.ndarray:
+    """Every person's log-likelihood at coefficients ``beta`` (..., P, K), shape (..., P) (logit formula)."""
+    v = np.einsum("ptjk,...pk->...ptj", panel.X, beta)
+    v = np.where(panel.available | ~panel.task_mask[:, :, None], v, -np.inf)
+    c = np.clip(panel.chosen, 0, None)
+    v_c = np.take_along_axis(v, np.broadcast_to(c[..., None], v.shape[:-1] + (1,)), axis=-1)[..., 0]
+    top = v.max(axis=-1, keepdims=True)
+    ll = v_c - top[..., 0] - np.log(np.exp(v - top).sum(axis=-1))
+    return np.where(panel.task_mask, ll, 0.0).sum(axis=-1)
+
+
+def test_person_marginal_with_fixed_taste_and_covariate_matches_adaptive_quadrature() -> None:
+    # a fixed taste (its coefficient changes with the draw, so the likelihood's Gaussian approximation is only
+    # approximate) beside a random one shifted by a covariate
+    attrs = [SimAttribute("x", levels=[0.0, 1.0, 2.0], taste="fixed", mean=0.7),
+             SimAttribute("y", levels=np.linspace(-1.5, 1.5, 7).tolist(), taste="normal", mean=1.0, sd=0.9)]
+    sim = simulate_panel(attrs, n_persons=80, n_tasks=10, alternatives=("a", "b", "c"),
+                         covariates={"age": {"y": 0.4}}, seed=5)
+    panel = ChoicePanel.from_frame(sim.data, sim.spec)
+    layout = model_layout(panel)
+    rng = np.random.default_rng(6)
+    shape = (2, 3)
+    mu = np.array([0.7, 1.0]) + 0.1 * rng.standard_normal(shape + (2,))
+    sd = np.abs(0.9 + 0.08 * rng.standard_normal(shape + (1,)))
+    assert layout.shifted_names == ["x", "y"]  # the covariate shifts both means, the fixed one's too
+    gamma = np.array([[0.2, 0.4]]) + 0.05 * rng.standard_normal(shape + (1, 2))
+    idata = az.from_dict(
+        posterior={"taste_mean": mu, "taste_sd": sd, "covariate_effect": gamma},
+        dims={"taste_mean": ["attribute"], "taste_sd": ["random_attribute"],
+              "covariate_effect": ["covariate", "shifted_attribute"]},
+        coords={"attribute": layout.names, "random_attribute": layout.random_names,
+                "covariate": list(layout.covariates), "shifted_attribute": layout.shifted_names})
+    fit = ChoiceFit(idata=idata, panel=panel, spec=panel.spec, layout=layout, info={"backend": "invented"})
+    est = person_log_marginal(fit, n_sim=200, seed=3)
+
+    z = panel.Z[:, 0] - panel.Z[:, 0].mean()  # the covariate shifts the mean at its deviation from the sample mean
+    m, s, g = mu.reshape(-1, 2), sd.reshape(-1), gamma.reshape(-1, 2)
+
+    def beta(e: float) -> np.ndarray:  # (draw, P, 2) at standard-normal deviate e of the random taste
+        x = m[:, :1] + g[:, :1] * z[None, :]
+        return np.stack([x, m[:, 1:] + g[:, 1:] * z[None, :] + s[:, None] * e], axis=-1)
+
+    grid = np.linspace(-10, 10, 401)
+    top = np.max([_panel_loglik(panel, beta(e)) - e**2 / 2 for e in grid], axis=0)  # (draw, P)
+    res = quad_vec(lambda e: np.exp(_panel_loglik(panel, beta(e)) - e**2 / 2 - top) / np.sqrt(2 * np.pi),
+                   -10, 10, epsrel=1e-8, norm="max")  # N(0, 1) mass beyond 10 SD: 1.5e-23
+    ref = (top + np.log(res[0])).reshape(shape + (-1,))
+    zscore = (est["log_marginal"].values - ref) / est["mc_se"].values
+    # 480 values: their standardised errors have spread near 1 (the SD of the sample SD of 480 normal values is
+    # 0.03, so 0.8..1.2 is over 6 of those). An importance-sampling estimate and its stated error are correlated (a
+    # sample that misses the proposal's low-weight tails is high and states a small error), so single values stray
+    # further than normal errors would (up to 5.9 over six seeds at S = 200): only gross errors are caught singly
+    assert 0.8 < float(np.std(zscore)) < 1.2 and float(np.max(np.abs(zscore))) < 10.0
+    assert abs(float((est["log_marginal"].values - ref).sum())) < 4 * float(np.sqrt((est["mc_se"] ** 2).sum()))

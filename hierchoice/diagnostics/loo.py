@@ -28,7 +28,7 @@ density,
     w_s = \frac{\prod_t P_{nt}(\beta(u^{(s)}))\, g(u^{(s)} \mid \theta, z_n)}{q_{n\theta}(u^{(s)})},
     \qquad u^{(s)} \sim q_{n\theta}\ \text{i.i.d.}
 
-The proposal :math:`q_{n\theta}` is a multivariate t (8 degrees of freedom; Geweke 1989,
+The proposal :math:`q_{n\theta}` is a multivariate t (30 degrees of freedom; Geweke 1989,
 *Econometrica* 57(6)) at the Laplace approximation of the person's posterior under :math:`\theta`:
 the likelihood's Gaussian approximation in :math:`u` (Newton's method at the posterior mean of the
 population, finite-difference derivatives) combined exactly with the normal :math:`g` of each
@@ -82,7 +82,7 @@ _BLOCK_CELLS = 4_000_000
 #: Name of the person-level log-likelihood variable handed to ArviZ.
 PERSON_LOGLIK = "person_marginal"
 #: Degrees of freedom of the multivariate t proposal of the person marginal likelihood.
-_T_DOF = 8.0
+_T_DOF = 30.0
 _NEWTON_STEPS = 50
 _FD_STEP = 1e-4
 
