@@ -104,7 +104,7 @@ LOG_SD_COLLAPSED = 0.05
 LOG_SD_LARGE = 2.0
 
 #: Person-level LOO settings of :func:`check_folder` (lighter than the defaults of
-#: :func:`hierchoice.compare.person_loo`; the report gives the Monte Carlo error they leave).
+#: :func:`hierchoice.diagnostics.loo.person_loo`; the report gives the Monte Carlo error they leave).
 FOLDER_N_SIM = 100
 FOLDER_MAX_DRAWS = 200
 

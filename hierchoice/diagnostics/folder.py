@@ -63,7 +63,7 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
     Loads the fit (:func:`hierchoice.archive.load_fit`), grades every convergence
     check, computes the in-sample hit rate, reliability table and posterior-predictive
     shares (:mod:`hierchoice.predictive`), task- and person-level PSIS-LOO
-    (:mod:`hierchoice.compare`), and writes ``diagnostics.json`` and the diagnostic
+    (:mod:`hierchoice.diagnostics.loo`), and writes ``diagnostics.json`` and the diagnostic
     plots (PNG) atomically. Prints nothing.
 
     Parameters
@@ -118,7 +118,8 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
             k_checks = pareto_k_checks(loo_t, "task") + pareto_k_checks(loo_p, "person")
             report["loo"] = {
                 "task": _loo_dict(loo_t),
-                "person": _loo_dict(loo_p) | {"mean_mc_se": float(mc["mc_se"].mean()), "n_sim": FOLDER_N_SIM,
+                "person": _loo_dict(loo_p) | {"elpd_mc_se": float(loo_p["elpd_mc_se"]),
+                                               "mean_mc_se": float(mc["mc_se"].mean()), "n_sim": FOLDER_N_SIM,
                                                "max_draws": FOLDER_MAX_DRAWS},
                 "checks": [c.to_dict() for c in k_checks],
             }
