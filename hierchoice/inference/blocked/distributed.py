@@ -15,21 +15,21 @@ from __future__ import annotations
 
 from typing import Any
 
-import numpy as np
-
+from ...exceptions import FitError
 from .problem import BlockedProblem
-from .shard import CHUNK, PersonShard, add_chunks, restrict, shard_bounds
+from .shard import CHUNK, PersonShard, Shards, restrict, shard_bounds
 
 
-class DaskShards:
-    """``shards`` person shards as actors on the workers of ``client`` (round-robin), with the calls of :class:`~.shard.LocalShards`."""
+class DaskShards(Shards):
+    """``shards`` person shards as actors on the workers of ``client`` (round-robin)."""
 
     def __init__(self, client: Any, prob: BlockedProblem, key: tuple[int, ...], shards: int, chunk: int = CHUNK):
         workers = sorted(client.scheduler_info()["workers"])
         if not workers:
-            raise RuntimeError("the Dask cluster has no workers")
+            raise FitError("the Dask cluster has no workers to hold the persons: start workers (dask worker "
+                           "ADDRESS --nthreads 1) or fit without a cluster.")
         self.n_persons = prob.n_persons
-        self._futures = []
+        self._futures: list[Any] = []
         for i, (a, b) in enumerate(shard_bounds(prob.n_persons, shards, chunk)):
             local = restrict(prob, a, b)
             self._futures.append(client.submit(PersonShard, local, a, key, chunk, actor=True,
@@ -39,12 +39,6 @@ class DaskShards:
     def call(self, method: str, *args: Any) -> list[Any]:
         pending = [getattr(a, method)(*args) for a in self.actors]  # all shards at once
         return [p.result() for p in pending]
-
-    def reduce(self, method: str, *args: Any) -> np.ndarray:
-        return add_chunks(self.call(method, *args))
-
-    def gather_eta(self) -> np.ndarray:
-        return np.concatenate(self.call("eta"))
 
     def close(self) -> None:
         self.actors = []

@@ -271,8 +271,27 @@ def asis_parts(prob: BlockedProblem, gamma: np.ndarray, e: np.ndarray, L: np.nda
 # --------------------------------------------------------------------------- where the shards live
 
 
-class LocalShards:
-    """Shards in this process (by default one): ``call`` runs a method on each, ``reduce`` adds their chunk sums."""
+class Shards:
+    """Where a chain's shards live: ``call`` runs a method on every shard (in shard order) and returns the results;
+    ``reduce`` adds their chunk sums (:func:`add_chunks`); ``gather_eta`` the persons' tastes in panel order."""
+
+    n_persons: int
+
+    def call(self, method: str, *args: Any) -> list[Any]:
+        raise NotImplementedError
+
+    def close(self) -> None:
+        """Let the shards go (they hold the persons' data)."""
+
+    def reduce(self, method: str, *args: Any) -> np.ndarray:
+        return add_chunks(self.call(method, *args))
+
+    def gather_eta(self) -> np.ndarray:
+        return np.concatenate(self.call("eta"))
+
+
+class LocalShards(Shards):
+    """Shards in this process (by default one)."""
 
     def __init__(self, prob: BlockedProblem, key: tuple[int, ...], shards: int = 1, chunk: int = CHUNK):
         self.n_persons = prob.n_persons
@@ -281,12 +300,6 @@ class LocalShards:
 
     def call(self, method: str, *args: Any) -> list[Any]:
         return [getattr(s, method)(*args) for s in self.shards]
-
-    def reduce(self, method: str, *args: Any) -> np.ndarray:
-        return add_chunks(self.call(method, *args))
-
-    def gather_eta(self) -> np.ndarray:
-        return np.concatenate(self.call("eta"))
 
     def close(self) -> None:
         self.shards = []
