@@ -117,7 +117,9 @@ class PersonShard:
 
     def location_terms(self, mu_free: np.ndarray, gamma: np.ndarray, L: np.ndarray) -> np.ndarray:
         r"""(chunk, ...) sums for the means' full conditional at ``(mu_free, gamma)``: see :func:`location_parts`."""
-        st = self._sync(mu_free, gamma, L)
+        st = self.state
+        assert st is not None, "start() the shard first"
+        st.L = L  # the point (mu_free, gamma) is a proposal: the shard's current means stay as they are
         parts = location_parts(self.prob, st, mu_free, gamma)
         if self.prob.fixed.size:
             st.cache = None  # the fixed coefficients may move
