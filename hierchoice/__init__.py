@@ -41,7 +41,7 @@ from .diagnostics import (
     prior_predictive,
     task_loo,
 )
-from .exceptions import ArchiveError, DataError, FitError, HierchoiceError, SpecError
+from .exceptions import ArchiveError, DataError, FitError, HierchoiceError, HierchoiceWarning, SpecError
 from .inference import (
     ChoiceFit,
     fit,
@@ -71,7 +71,7 @@ from .validation import (
 __all__ = [
     "__version__",
     # errors
-    "ArchiveError", "DataError", "FitError", "HierchoiceError", "SpecError",
+    "ArchiveError", "DataError", "FitError", "HierchoiceError", "HierchoiceWarning", "SpecError",
     # data and spec
     "ChoicePanel", "Spec", "Term", "ValidationSummary", "load_panel", "load_spec", "long_to_wide", "read_table",
     "wide_to_long", "SimAttribute", "SimulatedPanel", "benchmark_scenario", "ferry_scenario", "simulate_panel",

@@ -10,8 +10,10 @@ from __future__ import annotations
 import functools
 import logging
 import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
 
-__all__ = ["load_backend"]
+__all__ = ["load_backend", "quiet_pymc_logs"]
 
 
 @functools.cache
@@ -25,3 +27,17 @@ def load_backend() -> None:
         import pytensor.tensor  # noqa: F401
 
         pytensor.config.blas__ldflags  # noqa: B018  (detected lazily, with the warning, on first use: do it here)
+
+
+@contextmanager
+def quiet_pymc_logs() -> Iterator[None]:
+    """Hold PyMC's INFO messages (its own variable names, its sampler set-up) while the block runs."""
+    loggers = [logging.getLogger(name) for name in ("pymc", "pymc.sampling", "pymc.stats.convergence")]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.WARNING)
+    try:
+        yield
+    finally:
+        for lg, level in zip(loggers, levels):
+            lg.setLevel(level)

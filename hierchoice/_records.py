@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import logging
 import math
+import warnings
 from collections.abc import Iterable, Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
 
 import numpy as np
 
-__all__ = ["Check", "VERDICTS", "warning_record", "log_records", "overall_verdict", "checks_frame", "json_number",
+__all__ = ["Check", "VERDICTS", "warning_record", "warn_records", "overall_verdict", "checks_frame", "json_number",
            "jsonable"]
 
 log = logging.getLogger("hierchoice")
@@ -96,10 +97,16 @@ def warning_record(kind: str, level: str, message: str, where: str = "") -> Chec
     return Check(kind, where, math.nan, math.nan, "", "warn" if level == "warning" else "pass", advice=message)
 
 
-def log_records(records: Iterable[Check]) -> None:
-    """Send records to the ``hierchoice`` logger (warn and fail as warnings, passes as info)."""
+def warn_records(records: Iterable[Check], *, stacklevel: int = 3) -> None:
+    """Issue the warning-level records as :class:`~hierchoice.exceptions.HierchoiceWarning` (``warnings.warn``);
+    info-level ones go to the ``hierchoice`` logger at INFO."""
+    from .exceptions import HierchoiceWarning
+
     for rec in records:
-        log.log(logging.WARNING if rec.level == "warning" else logging.INFO, "%s: %s", rec.kind, rec.message)
+        if rec.level == "warning":
+            warnings.warn(f"{rec.kind}: {rec.message}", HierchoiceWarning, stacklevel=stacklevel)
+        else:
+            log.info("%s: %s", rec.kind, rec.message)
 
 
 def overall_verdict(checks: Iterable[Check]) -> str:

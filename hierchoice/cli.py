@@ -6,11 +6,12 @@ import argparse
 import contextlib
 import logging
 import sys
+import warnings
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 
 from ._args import whole_number_option
-from .exceptions import ArchiveError, HierchoiceError, SpecError
+from .exceptions import ArchiveError, HierchoiceError, HierchoiceWarning, SpecError
 
 EXIT_BAD_INPUT = 2
 
@@ -105,7 +106,7 @@ def _results_folder(folder: str) -> Path:
 
 @contextlib.contextmanager
 def _printed_here() -> Iterator[None]:
-    """Hold back the library's log of its warning records: the command prints each record once itself."""
+    """Hold back the library's warnings and log of its records: the command prints each record once itself."""
     logger = logging.getLogger("hierchoice")
 
     def hold(record: logging.LogRecord) -> bool:
@@ -113,7 +114,9 @@ def _printed_here() -> Iterator[None]:
 
     logger.addFilter(hold)
     try:
-        yield
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", HierchoiceWarning)
+            yield
     finally:
         logger.removeFilter(hold)
 

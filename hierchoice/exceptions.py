@@ -17,6 +17,7 @@ __all__ = [
     "SpecError",
     "FitError",
     "ArchiveError",
+    "HierchoiceWarning",
     "first_few",
 ]
 
@@ -39,6 +40,14 @@ class FitError(HierchoiceError):
 
 class ArchiveError(HierchoiceError):
     """A results folder is missing, incomplete or cannot be written."""
+
+
+class HierchoiceWarning(UserWarning):
+    """A note about a result that is not an error: an extrapolated share, a WTP ratio near a zero price.
+
+    Issued through :mod:`warnings`, so notebooks show it once per place and ``warnings.filterwarnings`` (or
+    pytest's ``-W``) controls it; the same records are in the result's ``attrs["warnings"]``.
+    """
 
 
 def first_few(values: Iterable[object], limit: int = 5) -> str:

@@ -34,6 +34,7 @@ from ._args import pattern_check as _format_check
 from ._args import text as _str
 from ._args import text_list as _str_list
 from ._args import whole_number as _positive_int
+from ._display import html_table
 from ._toml import dumps_toml
 from .exceptions import SpecError
 
@@ -554,6 +555,44 @@ class Spec:
     def to_toml(self) -> str:
         """The spec as TOML text."""
         return dumps_toml(self.to_dict())
+
+    # ---- displays: a few lines, not every field (``to_toml()`` shows them all)
+
+    def _display_rows(self) -> list[tuple[str, str]]:
+        rows = []
+        for name, a in self.attributes.items():
+            what = [a.taste + (f" ({a.sign})" if a.sign else "")]
+            what += [f"{a.coding}, base {a.base}"] if a.coding != "numeric" else []
+            what += [f"column {a.column}"] if a.column else []
+            rows.append((name, ", ".join(what)))
+        if self.constants is not None:
+            rows.append(("constants", f"{self.constants.taste}, reference {self.constants.reference}"))
+        if self.covariates is not None:
+            rows.append(("covariates", ", ".join(self.covariates.columns)))
+        if self.dynamics.active:
+            parts = ["lagged choice"] if self.dynamics.lagged_choice else []
+            parts += [f"lag of {', '.join(self.dynamics.lag)}"] if self.dynamics.lag else []
+            parts += [f"lead of {', '.join(self.dynamics.lead)}"] if self.dynamics.lead else []
+            rows.append(("dynamics", "; ".join(parts)))
+        m, s = self.model, self.sampling
+        model = ["correlated tastes" if m.correlated else "independent tastes"]
+        model += [f"WTP space (price {m.price})"] if m.wtp_space else []
+        rows.append(("model", ", ".join(model)))
+        rows.append(("sampling", f"{s.chains} chains x {s.draws} draws ({s.tune} tune), backend {s.backend}, "
+                                 f"seed {s.seed}"))
+        return rows
+
+    def _display_title(self) -> str:
+        c = self.columns
+        return (f"Spec: {len(self.attributes)} attributes; columns person={c.person}, task={c.task}, "
+                f"alternative={c.alternative}, chosen={c.chosen}")
+
+    def __repr__(self) -> str:
+        width = max([len(k) for k, _ in self._display_rows()] + [10])
+        return "\n".join([self._display_title()] + [f"  {k:<{width}}  {v}" for k, v in self._display_rows()])
+
+    def _repr_html_(self) -> str:
+        return html_table(self._display_title(), self._display_rows(), notes=["spec.to_toml() shows every key."])
 
 
 def _drop_none(table: dict[str, Any]) -> dict[str, Any]:

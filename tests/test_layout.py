@@ -17,7 +17,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "hierchoice"
 #: floor of each top-level part of the package; higher floors may import lower ones only
 FLOORS = {
     "exceptions": 0, "_version": 0,
-    "_io": 1, "_records": 1, "_backend": 1, "_args": 1, "_toml": 1,
+    "_io": 1, "_records": 1, "_display": 1, "_backend": 1, "_args": 1, "_toml": 1,
     "spec": 2,
     "data": 3,
     "model": 4,

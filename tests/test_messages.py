@@ -287,8 +287,8 @@ def test_a_missing_results_folder_is_named(tmp_path: Path, capsys: pytest.Captur
 
 
 def test_shares_prints_each_warning_once(tmp_path: Path) -> None:
-    # run in a fresh interpreter, where nothing has configured logging (as for a user), so that a record the
-    # library logs would reach the terminal through Python's last-resort handler
+    # run in a fresh interpreter, where nothing has configured warnings or logging (as for a user), so that a
+    # record the library warns about would reach the terminal through the default warning filter
     market = tmp_path / "market.csv"
     market.write_text("option,fare\na,1\nb,2\n")
     (tmp_path / "results").mkdir()
@@ -296,12 +296,12 @@ def test_shares_prints_each_warning_once(tmp_path: Path) -> None:
         import pandas as pd
         import hierchoice.analysis.shares as shares
         import hierchoice.inference.results as results
-        from hierchoice._records import log_records, warning_record
+        from hierchoice._records import warn_records, warning_record
         from hierchoice.cli import main
 
         def fake_shares(result, market, persons, prob):
             records = [warning_record("extrapolation", "warning", "fare 9 lies outside the design")]
-            log_records(records)  # what the library does
+            warn_records(records)  # what the library does (a HierchoiceWarning)
             table = pd.DataFrame({{"alternative": ["a", "b"], "median": [0.4, 0.6]}})
             table.attrs["warnings"] = records
             return table

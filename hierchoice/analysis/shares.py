@@ -69,7 +69,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .._records import Check, log_records, warning_record
+from .._records import Check, warn_records, warning_record
 from ..data.panel import _label, read_table
 from ..exceptions import DataError, FitError, SpecError, first_few
 from ..inference.results import ChoiceFit, thin_draws
@@ -304,7 +304,7 @@ def share_draws(
 def _finish(table: pd.DataFrame, prob: float, persons: str, records: Sequence[Check]) -> pd.DataFrame:
     table["prob"] = prob
     table.attrs.update(prob=prob, persons=persons, warnings=list(records))
-    log_records(records)
+    warn_records(records, stacklevel=4)  # to the caller of the public function
     return table
 
 

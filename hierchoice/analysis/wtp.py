@@ -58,7 +58,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .._records import Check, log_records, warning_record
+from .._records import Check, warn_records, warning_record
 from ..exceptions import SpecError, first_few
 from ..inference.results import ChoiceFit, thin_draws
 from .tastes import (
@@ -398,7 +398,7 @@ def population_wtp(
     out = pd.concat(pieces, ignore_index=True)
     out["prob"] = prob
     out.attrs.update(prob=prob, warnings=records, robust=robust, near_zero_mass=ds.attrs["near_zero_mass"])
-    log_records(records)
+    warn_records(records)  # to the caller of the public function
     return out
 
 
@@ -457,5 +457,5 @@ def person_wtp(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame
     table["price_near_zero"] = [float(by_person[p]) for p in table["person"]]
     table["prob"] = prob
     table.attrs.update(prob=prob, warnings=records)
-    log_records(records)
+    warn_records(records)  # to the caller of the public function
     return table

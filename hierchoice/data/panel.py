@@ -37,6 +37,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._display import html_table
 from ..exceptions import DataError, SpecError
 from ..spec import ColumnRoles, Spec, load_spec
 from .coding import Term, _check_enough_persons, _check_identified, _check_magnitudes, _code_attributes
@@ -169,6 +170,19 @@ class ChoicePanel:
             f"ChoicePanel({self.n_persons} persons, {self.n_tasks} tasks, "
             f"{len(self.alternatives)} alternatives, attributes: {', '.join(self.attributes)})"
         )
+
+    def _repr_html_(self) -> str:
+        per = self.tasks_per_person
+        rows = [("persons", self.n_persons), ("choice tasks", self.n_tasks),
+                ("tasks per person", f"min {per.min()}, median {np.median(per):g}, max {per.max()}"),
+                ("alternatives", ", ".join(map(str, self.alternatives))),
+                ("attributes", ", ".join(self.attributes)),
+                ("chance hit rate", f"{self.chance_rate:.3f}")]
+        rows += [("person covariates", ", ".join(self.covariates))] if self.covariates else []
+        removed = sum(self.summary.removed.values())
+        rows.append(("removed in validation", f"{removed} (see panel.summary)" if removed else "nothing"))
+        return html_table("ChoicePanel", rows, notes=["panel.summary has what validation found; panel.to_xarray() "
+                                                      "the arrays."])
 
     # ---- views
 

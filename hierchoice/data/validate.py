@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .._display import html_table
 from ..exceptions import DataError, first_few
 from ..spec import Spec
 
@@ -82,6 +83,22 @@ class ValidationSummary:
             lines += [f"  {n:>6}  {reason}" for reason, n in self.filled.items()]
         lines += [f"note: {note}" for note in self.notes]
         return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        removed = sum(self.removed.values())
+        filled = sum(self.filled.values())
+        return (f"ValidationSummary({self.rows_in} rows, {self.persons} persons, {self.tasks} tasks; "
+                f"removed {removed}, filled {filled}, notes {len(self.notes)}; print() it for details)")
+
+    def _repr_html_(self) -> str:
+        lo, med, hi = self.tasks_per_person
+        rows = [("rows read", self.rows_in), ("persons", self.persons), ("choice tasks", self.tasks),
+                ("tasks per person", f"min {lo}, median {med:g}, max {hi}"),
+                ("alternatives", ", ".join(self.alternatives)), ("model attributes", ", ".join(self.attributes))]
+        rows += [("person covariates", ", ".join(self.covariates))] if self.covariates else []
+        rows += [(f"removed: {reason}", n) for reason, n in self.removed.items()] or [("removed", "nothing")]
+        rows += [(f"filled with 0: {reason}", n) for reason, n in self.filled.items()]
+        return html_table("Validation summary", rows, notes=[f"note: {n}" for n in self.notes])
 
 
 # --------------------------------------------------------------------------- message helpers

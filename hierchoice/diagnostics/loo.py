@@ -65,6 +65,7 @@ import pandas as pd
 import xarray as xr
 
 from .._args import whole_number
+from .._display import Progress, want_progress
 from .._records import Check
 from ..exceptions import FitError, SpecError, first_few
 from ..inference.results import thin_draws
@@ -236,7 +237,8 @@ def _likelihood_laplace(data: DifferenceData, layout: Any, pop: _Population) -> 
     return np.einsum("pij,pj->pi", lam, u) + grad, lam
 
 
-def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, seed: int = 0) -> xr.Dataset:
+def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, seed: int = 0,
+                        progressbar: bool | None = None, label: str = "person LOO") -> xr.Dataset:
     r"""Log marginal likelihood of each person at each posterior draw of the population, by importance sampling.
 
     See the module docstring for the estimator
@@ -257,6 +259,9 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
         Thin the posterior to at most this many draws over all chains (evenly, the
         same draws in every chain); None keeps all.
     seed : int, default 0
+    progressbar : bool or None, default None
+        A progress bar over the posterior draws on standard error; None shows it in interactive use only
+        (a terminal or a Jupyter kernel). ``label`` names the job on it.
 
     Returns
     -------
@@ -273,23 +278,27 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
     data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen)
     out = np.empty((n_all, n_p))
     se = np.zeros((n_all, n_p))
-    if pop.cov_chol is None:  # no random taste: the likelihood itself, exact
-        step = max(1, _BLOCK_CELLS // max(1, data.D.shape[1] * data.D.shape[2]))
-        for d0 in range(0, n_all, step):
-            sl = slice(d0, min(d0 + step, n_all))
-            out[sl] = _loglik(data, layout, pop.base[sl], np.zeros(pop.base[sl].shape[:2] + (0,)))
-    else:
-        lin, lam = _likelihood_laplace(data, layout, pop)
-        rng = np.random.default_rng(seed)
-        step = max(1, _BLOCK_CELLS // max(1, n_sim * data.D.shape[1] * data.D.shape[2]))
-        for d0 in range(0, n_all, step):
-            sl = slice(d0, min(d0 + step, n_all))
-            lw = _importance_log_weights(data, layout, pop.base[sl], pop.cov_chol[sl], lin, lam, n_sim, rng)
-            top = lw.max(axis=1, keepdims=True)
-            w = np.exp(lw - top)  # (m, S, P)
-            w_mean = w.mean(axis=1)
-            se[sl] = np.sqrt(w.var(axis=1, ddof=1) / n_sim) / w_mean
-            out[sl] = top[:, 0, :] + np.log(w_mean) + 0.5 * se[sl] ** 2  # minus the bias -c^2/(2S)
+    bar = Progress(label, n_all, enabled=want_progress(progressbar), unit="posterior draws")
+    with bar:
+        if pop.cov_chol is None:  # no random taste: the likelihood itself, exact
+            step = max(1, _BLOCK_CELLS // max(1, data.D.shape[1] * data.D.shape[2]))
+            for d0 in range(0, n_all, step):
+                sl = slice(d0, min(d0 + step, n_all))
+                out[sl] = _loglik(data, layout, pop.base[sl], np.zeros(pop.base[sl].shape[:2] + (0,)))
+                bar.advance(sl.stop - sl.start)
+        else:
+            lin, lam = _likelihood_laplace(data, layout, pop)
+            rng = np.random.default_rng(seed)
+            step = max(1, _BLOCK_CELLS // max(1, n_sim * data.D.shape[1] * data.D.shape[2]))
+            for d0 in range(0, n_all, step):
+                sl = slice(d0, min(d0 + step, n_all))
+                lw = _importance_log_weights(data, layout, pop.base[sl], pop.cov_chol[sl], lin, lam, n_sim, rng)
+                top = lw.max(axis=1, keepdims=True)
+                w = np.exp(lw - top)  # (m, S, P)
+                w_mean = w.mean(axis=1)
+                se[sl] = np.sqrt(w.var(axis=1, ddof=1) / n_sim) / w_mean
+                out[sl] = top[:, 0, :] + np.log(w_mean) + 0.5 * se[sl] ** 2  # minus the bias -c^2/(2S)
+                bar.advance(sl.stop - sl.start)
     coords = {"chain": post["chain"].values, "draw": post["draw"].values, "person": list(panel.persons)}
     dims = ("chain", "draw", "person")
     return xr.Dataset(
@@ -330,7 +339,7 @@ def _importance_log_weights(data: DifferenceData, layout: Any, base: np.ndarray,
 
 
 def person_loo(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, seed: int = 0,
-               return_estimate: bool = False) -> Any:
+               return_estimate: bool = False, progressbar: bool | None = None, label: str = "person LOO") -> Any:
     r"""PSIS-LOO over persons: :func:`arviz.loo` on :func:`person_log_marginal`.
 
     The relative efficiency is computed by ArviZ from the (thinned) population
@@ -342,11 +351,13 @@ def person_loo(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, se
     is raised by :math:`\tfrac12 (1 - a_{nd}) \sigma_{nd}^2`) and the Monte Carlo standard error of the total,
     :math:`\sqrt{\sum_n \sum_d a_{nd}^2 \sigma_{nd}^2}`, is returned as ``elpd_mc_se`` in the result
     (and per person as ``loo_mc_se`` in the estimate). With ``return_estimate`` the marginal-likelihood
-    Dataset is returned too, as ``(loo, estimate)``.
+    Dataset is returned too, as ``(loo, estimate)``. ``progressbar`` and ``label``: see
+    :func:`person_log_marginal` (None: a progress bar in interactive use only).
     """
     import arviz as az
 
-    est = person_log_marginal(result, n_sim=n_sim, max_draws=max_draws, seed=seed)
+    est = person_log_marginal(result, n_sim=n_sim, max_draws=max_draws, seed=seed, progressbar=progressbar,
+                              label=label)
     post = thin_draws(result.idata.posterior, max_draws)
     pop = post[[v for v in POPULATION_VARS if v in post]]
     value = est["log_marginal"].stack(sample=("chain", "draw")).transpose("person", "sample")
@@ -406,7 +417,7 @@ def pareto_k_checks(loo: Any, level: str) -> list[Check]:
 
 
 def compare_models(models: Mapping[str, Any], *, level: str = "task", n_sim: int = 200,
-                   max_draws: int | None = 400, seed: int = 0) -> pd.DataFrame:
+                   max_draws: int | None = 400, seed: int = 0, progressbar: bool | None = None) -> pd.DataFrame:
     """Compare fits of the same panel by PSIS-LOO with :func:`arviz.compare`.
 
     Parameters
@@ -417,6 +428,9 @@ def compare_models(models: Mapping[str, Any], *, level: str = "task", n_sim: int
         (a new person).
     n_sim, max_draws, seed
         For the person level (see :func:`person_log_marginal`).
+    progressbar : bool or None, default None
+        At the person level, a progress bar per model on standard error; None shows it in interactive use
+        only (a terminal or a Jupyter kernel).
 
     Returns
     -------
@@ -438,7 +452,8 @@ def compare_models(models: Mapping[str, Any], *, level: str = "task", n_sim: int
         elif level == "task":
             loos[name] = task_loo(model)
         else:
-            loos[name] = person_loo(model, n_sim=n_sim, max_draws=max_draws, seed=seed)
+            loos[name] = person_loo(model, n_sim=n_sim, max_draws=max_draws, seed=seed, progressbar=progressbar,
+                                    label=f"person LOO of {name!r}")
     sizes = {name: int(loo["n_data_points"]) for name, loo in loos.items()}
     if len(set(sizes.values())) > 1:
         raise FitError(

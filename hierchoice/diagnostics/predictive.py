@@ -42,7 +42,8 @@ import pandas as pd
 import xarray as xr
 
 from .._args import whole_number
-from .._backend import load_backend
+from .._backend import load_backend, quiet_pymc_logs
+from .._display import Progress, html_table, status, want_progress
 from ..data.panel import ChoicePanel
 from ..exceptions import DataError, SpecError, first_few
 from ..inference.results import thin_draws
@@ -338,7 +339,7 @@ def ppc_shares(result: Any, *, draws: int = 200, prob: float = 0.9, seed: int = 
 
 
 def prior_predictive(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None, *,
-                     draws: int = 500, seed: int = 0) -> xr.Dataset:
+                     draws: int = 500, seed: int = 0, progressbar: bool | None = None) -> xr.Dataset:
     """Prior-predictive check: what choice behaviour do the priors imply on this design?
 
     Draws ``draws`` sets of population parameters and person tastes from the priors
@@ -355,6 +356,9 @@ def prior_predictive(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | 
         draw's most probable alternative is the one observed (about the chance rate
         when the priors know nothing); ``chance_rate`` as an attribute. Priors that
         put much mass on near-deterministic choices are too wide for the design.
+
+    With ``progressbar`` (None: in interactive use only) a status line names the tastes drawn, by the
+    panel's attribute names; PyMC's own message, which lists its internal variables, is held back.
     """
     load_backend()
     import pymc as pm
@@ -364,7 +368,8 @@ def prior_predictive(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | 
     whole_number(draws, "prior_predictive(draws=...)")
     spec = panel.spec if spec is None else load_spec(spec)
     model = build_model(panel, spec)
-    with warnings.catch_warnings():
+    label = f"prior predictive: {draws} draws of the tastes for {', '.join(panel.attributes)}"
+    with status(label, enabled=want_progress(progressbar)), quiet_pymc_logs(), warnings.catch_warnings():
         # the likelihood is a Potential, which prior sampling ignores: exactly what a prior check wants
         warnings.simplefilter("ignore", UserWarning)
         prior = pm.sample_prior_predictive(draws=draws, model=model, var_names=["person_taste"],
@@ -531,6 +536,21 @@ class HoldoutResult:
     test: ChoicePanel
     fits: dict[str, Any] = field(default_factory=dict)
 
+    def _lines(self) -> list[tuple[str, str]]:
+        return [(str(model), f"hit rate {row['hit_rate']:.3f}, mean log density {row['mean_lpd']:.3f}, "
+                 f"{int(row['n_tasks'])} tasks") for model, row in self.table.iterrows()]
+
+    def __repr__(self) -> str:
+        head = (f"HoldoutResult({self.test.n_tasks} held-out tasks of {self.test.n_persons} persons, "
+                f"fitted on {self.train.n_tasks} tasks)")
+        return "\n".join([head] + [f"  {model:<7} {text}" for model, text in self._lines()])
+
+    def _repr_html_(self) -> str:
+        return html_table(f"Holdout: {self.test.n_tasks} held-out tasks of {self.test.n_persons} persons, "
+                          f"fitted on {self.train.n_tasks} tasks", self._lines(),
+                          notes=["The person's posterior tastes from the training tasks score each held-out task; "
+                                 "chance picks uniformly among the available alternatives."])
+
 
 def holdout_validation(
     panel: ChoicePanel,
@@ -545,7 +565,7 @@ def holdout_validation(
     chains: int | None = None,
     backend: str | None = None,
     fit_seed: int | None = None,
-    progressbar: bool = False,
+    progressbar: bool | None = None,
 ) -> HoldoutResult:
     """Fit on all but ``tasks`` tasks per person and predict the held-out ones.
 
@@ -565,8 +585,11 @@ def holdout_validation(
     tasks, method, seed
         See :func:`holdout_split`.
     compare_fixed : bool, default True
-    draws, tune, chains, backend, fit_seed, progressbar
+    draws, tune, chains, backend, fit_seed
         Passed to :func:`hierchoice.fit` (``fit_seed`` as its ``seed``).
+    progressbar : bool or None, default None
+        A progress bar over the fits and the samplers' own progress; None shows them in interactive use only
+        (a terminal or a Jupyter kernel).
 
     Returns
     -------
@@ -583,12 +606,17 @@ def holdout_validation(
     fits: dict[str, Any] = {}
     rows = {}
     scored = []
-    for name, (data, s) in models.items():
-        fits[name] = fit(data, s, draws=draws, tune=tune, chains=chains, seed=fit_seed, backend=backend,
-                         progressbar=progressbar)
-        t = score_tasks(fits[name], test).assign(model=name)
-        scored.append(t)
-        rows[name] = {"hit_rate": float(t["hit"].mean()), "mean_lpd": float(t["lpd"].mean()), "n_tasks": len(t)}
+    show = want_progress(progressbar)
+    with Progress("holdout validation", len(models), enabled=show, unit="models fitted and scored",
+                  inline=False) as bar:
+        for name, (data, s) in models.items():
+            fits[name] = fit(data, s, draws=draws, tune=tune, chains=chains, seed=fit_seed, backend=backend,
+                             progressbar=show)
+            t = score_tasks(fits[name], test).assign(model=name)
+            scored.append(t)
+            rows[name] = {"hit_rate": float(t["hit"].mean()), "mean_lpd": float(t["lpd"].mean()),
+                          "n_tasks": len(t)}
+            bar.advance()
     n_avail = test.available.sum(axis=2)[test.task_mask]
     rows["chance"] = {"hit_rate": test.chance_rate, "mean_lpd": float(np.mean(-np.log(n_avail))),
                       "n_tasks": int(n_avail.size)}

@@ -11,30 +11,48 @@ function for the requested variables only.
 
 This replaces a private nutpie function for the length of one call; if nutpie's
 internals are not what this expects, :func:`compile_nutpie` falls back to
-nutpie's own compile and says so in the log.
+nutpie's own compile and says so (a :class:`~hierchoice.exceptions.HierchoiceWarning`).
+
+Compiling takes seconds (8-15 s for the demo's model): :func:`compile_nutpie` says so on a status line and, when
+it ends, how long it took. In a notebook nutpie shows its sampling progress as an HTML display of its sampler
+object, whose text form (what a text frontend or a notebook saved as text shows) is the object's default
+``<nutpie.sample._BackgroundSampler at 0x...>``; :func:`text_progress` gives it the progress as text instead
+for the length of one sampling call.
 """
 
 from __future__ import annotations
 
-import logging
-from collections.abc import Sequence
+import importlib
+import re
+import warnings
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from typing import Any
 
 from .._backend import load_backend
+from .._display import status
+from ..exceptions import HierchoiceWarning
 
-log = logging.getLogger("hierchoice")
-
-__all__ = ["compile_nutpie"]
+__all__ = ["compile_nutpie", "text_progress"]
 
 
-def compile_nutpie(model: Any, var_names: Sequence[str]) -> Any:
-    """``nutpie.compile_pymc_model(model)`` whose trace holds ``var_names`` only."""
+def compile_nutpie(model: Any, var_names: Sequence[str], *, progressbar: bool = True) -> Any:
+    """``nutpie.compile_pymc_model(model)`` whose trace holds ``var_names`` only.
+
+    With ``progressbar`` a status line says that the model is compiling and, at the end, how long it took.
+    """
+    with status("compiling the model for nutpie (numba)", enabled=progressbar):
+        return _compile(model, var_names)
+
+
+def _compile(model: Any, var_names: Sequence[str]) -> Any:
     import nutpie
     import nutpie.compile_pymc as ncp
 
     builder = getattr(ncp, "_make_functions", None)
     if builder is None:
-        log.warning("nutpie's internals changed: the trace keeps every free variable (more memory)")
+        warnings.warn("nutpie's internals changed: the trace keeps every free variable (more memory)",
+                      HierchoiceWarning, stacklevel=2)
         return nutpie.compile_pymc_model(model, var_names=list(var_names))
     ncp._make_functions = _trimming(builder, var_names)
     try:
@@ -49,8 +67,8 @@ def _trimming(builder: Any, var_names: Sequence[str]) -> Any:
         try:
             return _trim_expand(model, built, var_names, kwargs)
         except Exception as err:  # nutpie's layout is not what this expects: keep nutpie's own
-            log.warning("could not trim nutpie's trace (%s: %s); it keeps every free variable (more memory)",
-                        type(err).__name__, err)
+            warnings.warn(f"could not trim nutpie's trace ({type(err).__name__}: {err}); it keeps every free "
+                          "variable (more memory)", HierchoiceWarning, stacklevel=2)
             return built
 
     return trimmed
@@ -83,3 +101,33 @@ def _trim_expand(model, built, var_names, kwargs):  # type: ignore[no-untyped-de
         start += length
     info = ([names[i] for i in keep], new_slices, [shapes[i] for i in keep])
     return n_free, start, logp_fn, new_expand, init_fn, info
+
+
+def _widget_text(sampler: Any) -> str:
+    """nutpie's progress display as one line of text (from the HTML it renders)."""
+    page = str(getattr(sampler, "_html", "") or "")
+    bar = re.search(r'id="total-progress-bar"\s*max="(\d+)"\s*value="(\d+)"', page)
+    head = re.sub(r"<[^>]+>", " ", page.split("<progress", 1)[0])
+    words = " ".join(head.split()).replace("Sampler Progress", "").strip()
+    draws = f"draws {bar.group(2)}/{bar.group(1)}; " if bar else ""
+    return f"nutpie sampling: {draws}{words}" if words or draws else "nutpie sampling"
+
+
+@contextmanager
+def text_progress() -> Iterator[None]:
+    """While the block runs, nutpie's notebook progress display reads as its progress in text (see above)."""
+    try:
+        cls = importlib.import_module("nutpie.sample")._BackgroundSampler
+    except (ImportError, AttributeError):  # another nutpie: leave its display as it is
+        yield
+        return
+    had = "__repr__" in vars(cls)
+    old = vars(cls).get("__repr__")
+    cls.__repr__ = _widget_text
+    try:
+        yield
+    finally:
+        if had:
+            cls.__repr__ = old
+        else:
+            del cls.__repr__

@@ -20,7 +20,8 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .._backend import load_backend
+from .._backend import load_backend, quiet_pymc_logs
+from .._display import Status
 from ..data.panel import ChoicePanel
 from ..exceptions import FitError, SpecError
 from ..model.build import POPULATION_VARS, build_model, model_layout
@@ -54,12 +55,22 @@ def _sample_pymc(model, *, draws, tune, chains, cores, seed, target_accept, var_
     load_backend()
     import pymc as pm
 
-    with model:
-        return pm.sample(
-            draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed, target_accept=target_accept,
-            var_names=var_names, progressbar=progressbar, compute_convergence_checks=False,
-            return_inferencedata=True, idata_kwargs={"log_likelihood": False},
-        )
+    # PyMC compiles the model (PyTensor) inside pm.sample before its progress bar starts: the status line ends
+    # at the first draw, so it spans the compile and the start of the chains
+    ready = Status("compiling the model for PyMC's NUTS (PyTensor)", enabled=progressbar, inline=False).begin()
+    try:  # PyMC's own INFO lines name its internal variables ("NUTS: [mu_std, ...]"): held back
+        with model, quiet_pymc_logs():
+            idata = pm.sample(
+                draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed, target_accept=target_accept,
+                var_names=var_names, progressbar=progressbar, compute_convergence_checks=False,
+                return_inferencedata=True, idata_kwargs={"log_likelihood": False},
+                callback=lambda **_: ready.end(what="compiled, chains started"),
+            )
+    except BaseException:
+        ready.end(ok=False)
+        raise
+    ready.end(what="compiled, chains started")
+    return idata
 
 
 def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, var_names, progressbar, mass_matrix):  # type: ignore[no-untyped-def]
@@ -69,9 +80,9 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
     import arviz as az
     import nutpie
 
-    from .nutpie_compile import compile_nutpie
+    from .nutpie_compile import compile_nutpie, text_progress
 
-    compiled = compile_nutpie(model, var_names)
+    compiled = compile_nutpie(model, var_names, progressbar=progressbar)
     options = {
         "draws": draws, "tune": tune, "chains": chains, "cores": cores, "seed": seed, "target_accept": target_accept,
         "progress_bar": progressbar, "save_warmup": False,
@@ -83,7 +94,8 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
     }
     store_type = getattr(getattr(nutpie, "zarr_store", None), "LocalStore", None)
     if store_type is None:  # an older nutpie: the draws stay in its in-memory table
-        return nutpie.sample(compiled, **options)
+        with text_progress():
+            return nutpie.sample(compiled, **options)
     # nutpie keeps each draw's unconstrained point and gradient (two doubles per free parameter, the person
     # deviations included) whatever the store_* options say; in its in-memory table that grew with
     # persons x draws (B1: 570 -> 786 MB for 250 -> 2000 draws per chain). Written to a zarr store in a
@@ -91,7 +103,8 @@ def _sample_nutpie(model, *, draws, tune, chains, cores, seed, target_accept, va
     # per-draw statistics and the requested variables of the draws are read back; the folder is removed.
     folder = tempfile.mkdtemp(prefix="hierchoice-draws-")
     try:
-        idata = nutpie.sample(compiled, zarr_store=store_type(folder), **options)
+        with text_progress():
+            idata = nutpie.sample(compiled, zarr_store=store_type(folder), **options)
         # the store also holds the tuning phase (warmup_* groups, whatever save_warmup says), with the same
         # per-parameter arrays: reading those back had made the full B3 run peak at 6.4 GB
         stats = idata["sample_stats"]

@@ -14,15 +14,13 @@ May import: ``hierchoice.inference`` and everything below it; nothing else of
 
 from __future__ import annotations
 
-import logging
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, Protocol
 
 import xarray as xr
 
+from .._backend import quiet_pymc_logs
 from ..data.panel import ChoicePanel
 from ..exceptions import FitError
 from ..spec import Spec
@@ -45,19 +43,6 @@ class Fitter(Protocol):
     """
 
     def __call__(self, panel: ChoicePanel, spec: Spec, seed: int) -> xr.Dataset: ...
-
-
-@contextmanager
-def _quiet_sampler_logs() -> Iterator[None]:
-    loggers = [logging.getLogger(name) for name in ("pymc", "pymc.sampling", "pymc.stats.convergence")]
-    levels = [lg.level for lg in loggers]
-    for lg in loggers:
-        lg.setLevel(logging.WARNING)
-    try:
-        yield
-    finally:
-        for lg, level in zip(loggers, levels):
-            lg.setLevel(level)
 
 
 @dataclass(frozen=True)
@@ -101,7 +86,7 @@ class NutsFitter:
         from ..inference.sampling import fit
 
         spec = spec.with_sampling(store_person_draws=False)
-        with _quiet_sampler_logs():
+        with quiet_pymc_logs():
             result = fit(panel, spec, draws=self.draws, tune=self.tune, chains=self.chains, seed=seed,
                          backend=self.backend, target_accept=self.target_accept, cores=1, progressbar=False,
                          method=self.method)

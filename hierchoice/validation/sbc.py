@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .._backend import load_backend
+from .._backend import load_backend, quiet_pymc_logs
 from ..data.panel import ChoicePanel
 from ..diagnostics.checks import population_draws
 from ..exceptions import FitError, SpecError, first_few
@@ -61,7 +61,6 @@ from .fitters import (
     Fitter,
     NutsFitter,
     _call_fitter,
-    _quiet_sampler_logs,
 )
 from .results import _first_success, _per_fit_fields
 
@@ -129,7 +128,7 @@ def _prior_draw(panel: ChoicePanel, spec: Spec, seed: int) -> tuple[xr.DataArray
 
     model = build_model(panel, spec)
     names = [v for v in POPULATION_VARS if v in model.named_vars] + ["person_taste"]
-    with _quiet_sampler_logs(), warnings.catch_warnings():
+    with quiet_pymc_logs(), warnings.catch_warnings():
         # the likelihood is a Potential: leaving it out is what makes these prior draws
         warnings.filterwarnings("ignore", message="The effect of Potentials", category=UserWarning)
         prior = pm.sample_prior_predictive(model=model, draws=1, random_seed=seed, var_names=names).prior
