@@ -80,8 +80,11 @@ def test_getting_started_runs_top_to_bottom(page: dict[str, Any]) -> None:
     assert (folder / "results" / "report.html").exists()
     ns = page["ns"]
     assert ns["exit_code"] in (0, 1) and isinstance(ns["diagnostics"], dict)
-    shares = page["shown"][-2]  # compare_shares: the change in shares sums to zero over the alternatives
-    assert len(shares) == 3
+    change = page["shown"][-2].set_index("alternative")  # compare_shares(result, market, fare_cut)
+    # shares sum to 1 in both markets, so the mean changes sum to 0; the fare is a negative (lognormal) taste, so
+    # cutting ferry A's fare raises its logit probability for every person and draw (own-price effect of the logit)
+    assert abs(change["mean"].sum()) < 1e-9
+    assert change.loc["ferry_a", "mean"] > 0 and change.loc["ferry_a", "eti_low"] > 0
     assert len(python_blocks(DOCS / "getting_started.md")) == len(page["shown"]) >= 9
 
 
@@ -103,7 +106,7 @@ def test_compile_is_announced_with_its_time(page: dict[str, Any]) -> None:
     assert "_BackgroundSampler" not in err
 
 
-def test_person_loo_shows_progress(page: dict[str, Any], capsys: pytest.CaptureFixture[str]) -> None:
+def test_person_loo_and_compare_show_progress(page: dict[str, Any], capsys: pytest.CaptureFixture[str]) -> None:
     result = page["ns"]["result"]
     hierchoice.person_loo(result, n_sim=10, max_draws=20, progressbar=True)
     err = capsys.readouterr().err
@@ -111,6 +114,9 @@ def test_person_loo_shows_progress(page: dict[str, Any], capsys: pytest.CaptureF
     assert "person LOO: [" in err and "20/20 posterior draws" in err
     hierchoice.person_loo(result, n_sim=10, max_draws=20)  # default: progress in interactive use only
     assert capsys.readouterr().err == ""
+    hierchoice.compare_models({"a": result, "b": result}, level="person", n_sim=10, max_draws=20, progressbar=True)
+    err = capsys.readouterr().err
+    assert "person LOO of 'a': [" in err and "person LOO of 'b': [" in err
 
 
 def test_extrapolation_is_a_warning(page: dict[str, Any]) -> None:
