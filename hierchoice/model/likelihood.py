@@ -27,7 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["DifferenceData", "difference_data", "task_loglik_numpy", "task_loglik_graph", "choice_probabilities"]
+__all__ = ["DifferenceData", "RaggedDifferences", "choice_probabilities", "difference_data", "ragged_differences",
+           "task_loglik_graph", "task_loglik_numpy"]
 
 
 @dataclass(frozen=True)
@@ -66,6 +67,116 @@ def difference_data(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray,
     others = np.where(mask[..., None], others, 0.0)
     D = np.ascontiguousarray(np.moveaxis(others, -1, 0).reshape(n_k, n_p, n_t * (n_j - 1)))
     return DifferenceData(D=D, mask=mask.reshape(n_p, -1).astype(float), n_tasks=n_t, n_others=n_j - 1)
+
+
+@dataclass(frozen=True)
+class RaggedDifferences:
+    """Attribute differences of the real cells only: no padded task, no unavailable alternative.
+
+    A *cell* is one (task, non-chosen available alternative) pair. Cells are stored contiguously, task after task,
+    and tasks person after person (compressed sparse rows, twice), so memory and the cost of a log-likelihood
+    are linear in the number of real cells whatever the spread of tasks per person or of alternatives per task.
+
+    Attributes
+    ----------
+    D : ndarray, shape (n_cells, n_attributes)
+        ``x_ntj - x_ntc`` for each cell.
+    task_ptr : ndarray of int64, shape (n_tasks + 1,)
+        The cells of task ``i`` are ``D[task_ptr[i]:task_ptr[i + 1]]`` (none for a task with one alternative).
+    person_ptr : ndarray of int64, shape (n_persons + 1,)
+        The tasks of person ``n`` are ``person_ptr[n]:person_ptr[n + 1]``.
+    task_position : ndarray of int64, shape (n_tasks,)
+        Each task's column in the panel's (person, task) arrays, to place per-task values back.
+    """
+
+    D: np.ndarray
+    task_ptr: np.ndarray
+    person_ptr: np.ndarray
+    task_position: np.ndarray
+
+    @property
+    def n_persons(self) -> int:
+        return int(self.person_ptr.size - 1)
+
+    @property
+    def n_tasks(self) -> int:
+        return int(self.task_ptr.size - 1)
+
+    @property
+    def n_cells(self) -> int:
+        return int(self.D.shape[0])
+
+    @property
+    def n_attributes(self) -> int:
+        return int(self.D.shape[1])
+
+    @property
+    def task_owner(self) -> np.ndarray:
+        """(n_tasks,) the person index of each task."""
+        return np.repeat(np.arange(self.n_persons), np.diff(self.person_ptr))
+
+    @property
+    def cell_task(self) -> np.ndarray:
+        """(n_cells,) the task index of each cell."""
+        return np.repeat(np.arange(self.n_tasks), np.diff(self.task_ptr))
+
+    @property
+    def max_others(self) -> int:
+        """The largest number of cells in one task."""
+        return int(np.diff(self.task_ptr).max(initial=0))
+
+    def persons(self, index: np.ndarray | slice) -> RaggedDifferences:
+        """The data of the persons ``index`` (a slice gives views; an index array may repeat persons)."""
+        if isinstance(index, slice):
+            start, stop, step = index.indices(self.n_persons)
+            if step != 1:
+                raise ValueError("persons() takes a contiguous slice")
+            t0, t1 = int(self.person_ptr[start]), int(self.person_ptr[stop])
+            c0, c1 = int(self.task_ptr[t0]), int(self.task_ptr[t1])
+            return RaggedDifferences(D=self.D[c0:c1], task_ptr=self.task_ptr[t0 : t1 + 1] - c0,
+                                     person_ptr=self.person_ptr[start : stop + 1] - t0,
+                                     task_position=self.task_position[t0:t1])
+        index = np.asarray(index, dtype=np.int64)
+        n_t = np.diff(self.person_ptr)[index]
+        tasks = _ranges(self.person_ptr[index], n_t)
+        n_c = np.diff(self.task_ptr)[tasks]
+        cells = _ranges(self.task_ptr[tasks], n_c)
+        return RaggedDifferences(D=np.ascontiguousarray(self.D[cells]), task_ptr=_pointers(n_c),
+                                 person_ptr=_pointers(n_t), task_position=self.task_position[tasks])
+
+
+def _pointers(counts: np.ndarray) -> np.ndarray:
+    out = np.zeros(len(counts) + 1, dtype=np.int64)
+    np.cumsum(counts, out=out[1:])
+    return out
+
+
+def _ranges(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """The concatenation of ``arange(s, s + c)`` over ``starts``, ``counts``."""
+    counts = np.asarray(counts, dtype=np.int64)
+    ptr = _pointers(counts)
+    return np.repeat(np.asarray(starts, dtype=np.int64) - ptr[:-1], counts) + np.arange(ptr[-1])
+
+
+def ragged_differences(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray, chosen: np.ndarray,
+                       scale: np.ndarray | None = None) -> RaggedDifferences:
+    """Build :class:`RaggedDifferences` from the panel's arrays (optionally dividing attributes by ``scale``).
+
+    Tasks keep the panel's order (person by person, then by task position); a task's cells keep the order of the
+    alternatives.
+    """
+    p, t = np.nonzero(task_mask)
+    cells = available & task_mask[:, :, None]
+    cells[p, t, chosen[p, t]] = False
+    pc, tc, jc = np.nonzero(cells)
+    D = X[pc, tc, jc] - X[pc, tc, chosen[pc, tc]]
+    if scale is not None:
+        D = D / scale
+    task_number = np.zeros(task_mask.shape, dtype=np.int64)
+    task_number[p, t] = np.arange(p.size)
+    per_task = np.bincount(task_number[pc, tc], minlength=p.size)
+    return RaggedDifferences(D=np.ascontiguousarray(D, dtype=float), task_ptr=_pointers(per_task),
+                             person_ptr=_pointers(task_mask.sum(axis=1)), task_position=t.astype(np.int64))
 
 
 def _stable_task_loglik(delta, mask, xp):  # type: ignore[no-untyped-def]
