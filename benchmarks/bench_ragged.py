@@ -16,16 +16,26 @@ It prints milliseconds per evaluation (median of interleaved repeats), bytes of 
 real cell, and the ratios ragged / balanced (target <= 1.3) and padded / ragged.
 
     python benchmarks/bench_ragged.py --households 5000 --repeats 30
+
+With ``--pipeline`` it measures instead the peak memory (tracemalloc: numpy and pandas allocations) of the whole
+path from a long table to the likelihood's data (validation, the panel, the model's scaling, the ragged cells,
+the Op's layout) at two panel sizes, per real row, against the size of the padded arrays the panel would hold.
+
+    python benchmarks/bench_ragged.py --pipeline --households 5000
 """
 
 from __future__ import annotations
 
 import argparse
 import time
+import tracemalloc
 
 import numpy as np
+import pandas as pd
 
-from hierchoice.model.likelihood import ragged_differences
+import hierchoice as hc
+from hierchoice.model.build import model_layout
+from hierchoice.model.likelihood import cell_differences, ragged_differences
 from hierchoice.model.logit_op import batch_layout, loglik_and_grad, op_layout, padded_by_person
 
 
@@ -53,12 +63,48 @@ def balanced_panel(rng: np.random.Generator, n_p: int, n_cells: int, n_j: int = 
     return X, available, task_mask, chosen
 
 
+def long_table(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray, chosen: np.ndarray) -> tuple[pd.DataFrame, dict]:
+    """The panel as the long table a user would give: one row per offered alternative (absent rows: not offered)."""
+    p, t, j = np.nonzero(available & task_mask[:, :, None])
+    frame = pd.DataFrame({"household": p, "purchase": t, "product": np.array(list("ABCDE"))[j],
+                          "bought": (chosen[p, t] == j).astype(int)})
+    names = [f"a{k}" for k in range(X.shape[3])]
+    for k, name in enumerate(names):
+        frame[name] = X[p, t, j, k]
+    spec = {"columns": {"person": "household", "task": "purchase", "alternative": "product", "chosen": "bought"},
+            "attributes": {name: {"taste": "normal"} for name in names}}
+    return frame, spec
+
+
+def pipeline(n_p: int, seed: int) -> None:
+    print(f"{'households':>11}{'real rows':>12}{'peak MB':>9}{'bytes/row':>11}{'padded X MB':>13}")
+    for n in (n_p // 2, n_p):
+        X, av, tm, ch = purchase_panel(np.random.default_rng(seed), n)
+        frame, spec = long_table(X, av, tm, ch)
+        padded_mb = (X.nbytes + av.nbytes + tm.nbytes + ch.nbytes) / 1e6
+        del X, av, tm, ch
+        tracemalloc.start()
+        base = tracemalloc.get_traced_memory()[0]
+        panel = hc.ChoicePanel.from_frame(frame, spec)
+        layout = model_layout(panel, panel.spec)
+        op = op_layout(cell_differences(panel.cells, scale=layout.scale))
+        peak = tracemalloc.get_traced_memory()[1] - base
+        tracemalloc.stop()
+        assert panel._dense is None, "the padded arrays were built on the way to the likelihood"
+        print(f"{n:>11}{len(frame):>12,}{peak / 1e6:>9.1f}{peak / len(frame):>11.0f}{padded_mb:>13.1f}")
+        del panel, op, frame
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--households", type=int, default=5000)
     ap.add_argument("--repeats", type=int, default=30)
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--pipeline", action="store_true", help="peak memory from a long table to the likelihood's data")
     args = ap.parse_args()
+    if args.pipeline:
+        pipeline(args.households, args.seed)
+        return
     rng = np.random.default_rng(args.seed)
     n_p = args.households
     X, av, tm, ch = purchase_panel(rng, n_p)

@@ -39,7 +39,7 @@ from .._backend import load_backend
 from ..data.panel import ChoicePanel, Term
 from ..exceptions import SpecError
 from ..spec import Spec, load_spec
-from .likelihood import RaggedDifferences, difference_data, ragged_differences, task_loglik_graph
+from .likelihood import RaggedDifferences, cell_differences, difference_data, task_loglik_graph
 from .transforms import TasteMap, latent_to_coefficient
 
 __all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD"]
@@ -145,12 +145,11 @@ def model_layout(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path
     panel = panel.with_spec(spec)
     terms = panel.terms
     names = [t.name for t in terms]
-    avail = panel.available & panel.task_mask[:, :, None]
     scale = np.ones(len(terms))
     for k, term in enumerate(terms):
         if term.kind in _UNIT_KINDS:
             continue
-        values = panel.X[..., k][avail]
+        values = panel.cells.x[:, k]  # every available alternative of every real task
         sd = float(np.std(values)) if values.size else 0.0
         scale[k] = sd if sd > 0 else 1.0
     random = tuple(k for k, t in enumerate(terms) if t.taste != "fixed")
@@ -210,13 +209,13 @@ def _constant_centre(panel: ChoicePanel, terms: tuple[Term, ...], scale: np.ndar
     const = [k for k, t in enumerate(terms) if t.kind == "constant"]
     if not const or spec.constants is None:
         return None
-    avail = panel.available & panel.task_mask[:, :, None]
+    cells = panel.cells
     ref = panel.alternatives.index(spec.constants.reference)
     centre = np.zeros((len(terms), len(terms)))
     slopes = [k for k, t in enumerate(terms) if t.kind != "constant"]
 
     def mean_of(j: int, k: int) -> float:
-        v = panel.X[:, :, j, k][avail[:, :, j]] / scale[k]
+        v = cells.x[cells.alt == j, k] / scale[k]
         return float(v.mean()) if v.size else 0.0
 
     for a in const:
@@ -294,7 +293,7 @@ def _free_means(layout: ModelLayout, sigma: np.ndarray):  # type: ignore[no-unty
 
 
 def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> RaggedDifferences:
-    return ragged_differences(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
+    return cell_differences(panel.cells, scale=layout.scale)
 
 
 def _into_columns(values, columns: tuple[int, ...] | list[int], n_columns: int):  # type: ignore[no-untyped-def]

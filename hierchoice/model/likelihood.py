@@ -27,8 +27,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..data.panel import PanelCells, csr_pointers
+
 __all__ = ["DifferenceData", "RaggedDifferences", "choice_probabilities", "difference_data", "ragged_differences",
-           "task_loglik_graph", "task_loglik_numpy"]
+           "cell_differences", "task_loglik_graph", "task_loglik_numpy"]
 
 
 @dataclass(frozen=True)
@@ -141,42 +143,39 @@ class RaggedDifferences:
         tasks = _ranges(self.person_ptr[index], n_t)
         n_c = np.diff(self.task_ptr)[tasks]
         cells = _ranges(self.task_ptr[tasks], n_c)
-        return RaggedDifferences(D=np.ascontiguousarray(self.D[cells]), task_ptr=_pointers(n_c),
-                                 person_ptr=_pointers(n_t), task_position=self.task_position[tasks])
-
-
-def _pointers(counts: np.ndarray) -> np.ndarray:
-    out = np.zeros(len(counts) + 1, dtype=np.int64)
-    np.cumsum(counts, out=out[1:])
-    return out
+        return RaggedDifferences(D=np.ascontiguousarray(self.D[cells]), task_ptr=csr_pointers(n_c),
+                                 person_ptr=csr_pointers(n_t), task_position=self.task_position[tasks])
 
 
 def _ranges(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
     """The concatenation of ``arange(s, s + c)`` over ``starts``, ``counts``."""
     counts = np.asarray(counts, dtype=np.int64)
-    ptr = _pointers(counts)
+    ptr = csr_pointers(counts)
     return np.repeat(np.asarray(starts, dtype=np.int64) - ptr[:-1], counts) + np.arange(ptr[-1])
+
+
+def cell_differences(cells: PanelCells, scale: np.ndarray | None = None) -> RaggedDifferences:
+    """Build :class:`RaggedDifferences` from a panel's real rows (optionally dividing attributes by ``scale``).
+
+    Each task's non-chosen rows, minus its chosen row; tasks and cells keep the panel's order. Memory and time
+    are linear in the number of real rows.
+    """
+    task = cells.row_task
+    is_chosen = cells.alt == cells.chosen[task]
+    chosen_row = np.flatnonzero(is_chosen)  # one per task, in task order
+    others = np.flatnonzero(~is_chosen)
+    D = cells.x[others] - cells.x[chosen_row[task[others]]]
+    if scale is not None:
+        D = D / scale
+    return RaggedDifferences(D=np.ascontiguousarray(D, dtype=float),
+                             task_ptr=csr_pointers(np.bincount(task[others], minlength=cells.n_tasks)),
+                             person_ptr=cells.person_ptr, task_position=cells.position)
 
 
 def ragged_differences(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray, chosen: np.ndarray,
                        scale: np.ndarray | None = None) -> RaggedDifferences:
-    """Build :class:`RaggedDifferences` from the panel's arrays (optionally dividing attributes by ``scale``).
-
-    Tasks keep the panel's order (person by person, then by task position); a task's cells keep the order of the
-    alternatives.
-    """
-    p, t = np.nonzero(task_mask)
-    cells = available & task_mask[:, :, None]
-    cells[p, t, chosen[p, t]] = False
-    pc, tc, jc = np.nonzero(cells)
-    D = X[pc, tc, jc] - X[pc, tc, chosen[pc, tc]]
-    if scale is not None:
-        D = D / scale
-    task_number = np.zeros(task_mask.shape, dtype=np.int64)
-    task_number[p, t] = np.arange(p.size)
-    per_task = np.bincount(task_number[pc, tc], minlength=p.size)
-    return RaggedDifferences(D=np.ascontiguousarray(D, dtype=float), task_ptr=_pointers(per_task),
-                             person_ptr=_pointers(task_mask.sum(axis=1)), task_position=t.astype(np.int64))
+    """:func:`cell_differences` of padded (person, task, alternative[, attribute]) arrays."""
+    return cell_differences(PanelCells.from_dense(X, available, task_mask, chosen), scale)
 
 
 def _stable_task_loglik(delta, mask, xp):  # type: ignore[no-untyped-def]

@@ -12,7 +12,7 @@ import numpy as np
 from ...data.panel import ChoicePanel
 from ...exceptions import SpecError
 from ...model.build import PRIOR_SD, ModelLayout, model_layout
-from ...model.likelihood import RaggedDifferences, ragged_differences
+from ...model.likelihood import RaggedDifferences, cell_differences
 from ...spec import Spec
 from .kernels import person_information, person_loglik
 
@@ -110,7 +110,7 @@ def blocked_problem(panel: ChoicePanel, spec: Spec) -> BlockedProblem:
     panel = panel.with_spec(spec)
     layout = model_layout(panel, spec)
     _refuse(layout, spec)
-    data = ragged_differences(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
+    data = cell_differences(panel.cells, scale=layout.scale)
     n_k = len(layout.terms)
     rnd = np.array(layout.random, dtype=np.int64)
     ps = spec.model.prior_scale
