@@ -12,7 +12,12 @@ import pytest
 from scipy.special import log_softmax
 
 from hierchoice.inference.blocked.kernels import person_loglik, person_loglik_grad
-from hierchoice.model.likelihood import difference_data, ragged_differences, task_loglik_graph
+from hierchoice.model.likelihood import (
+    difference_data,
+    ragged_differences,
+    task_loglik_cells,
+    task_loglik_graph,
+)
 from hierchoice.model.logit_op import batch_layout, loglik_and_grad, op_layout, padded_by_person
 
 
@@ -94,3 +99,15 @@ def test_persons_subset_and_slice_equal_the_sub_panel():
     assert tm[ragged.task_owner, ragged.task_position].all()
     assert ragged.n_tasks == int(tm.sum())
     assert len(set(zip(ragged.task_owner.tolist(), ragged.task_position.tolist()))) == ragged.n_tasks
+
+
+def test_per_task_values_on_cells_equal_log_softmax_in_the_panels_places():
+    """Per-task log-probabilities over draws (what LOO and the log-likelihood group use), ragged vs scipy."""
+    rng = np.random.default_rng(6)
+    X, av, tm, ch = _heavy_tailed_panel(rng, n_p=25)
+    ragged = ragged_differences(X, av, tm, ch)
+    beta = rng.normal(0, 3, (4, 25, X.shape[3]))  # 4 draws
+    per_task = task_loglik_cells(ragged, beta, chunk_cells=500)  # several chunks of draws
+    ref = np.stack([_log_softmax_loglik(X, av, tm, ch, b) for b in beta])
+    np.testing.assert_allclose(per_task, ref[:, ragged.task_owner, ragged.task_position], rtol=1e-10, atol=1e-13)  # atol: tasks with log P ~ -1e-8
+    assert np.all(per_task[:, np.diff(ragged.task_ptr) == 0] == 0.0)  # one-alternative tasks carry nothing
