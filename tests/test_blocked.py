@@ -79,15 +79,14 @@ def test_person_gradient_matches_central_finite_differences(ferry) -> None:  # t
     prob = bl.blocked_problem(panel, spec)
     rng = np.random.default_rng(0)
     beta = rng.normal(0, 0.8, (prob.n_persons, prob.n_attributes))
-    ll, grad = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
+    ll, grad = person_loglik_grad(prob.data, beta)
     eps = 1e-6
     fd = np.empty_like(grad)
     for k in range(prob.n_attributes):
         up, down = beta.copy(), beta.copy()
         up[:, k] += eps
         down[:, k] -= eps
-        fd[:, k] = (person_loglik(prob.Dp, prob.maskp, prob.n_others, up)
-                    - person_loglik(prob.Dp, prob.maskp, prob.n_others, down)) / (2 * eps)
+        fd[:, k] = (person_loglik(prob.data, up) - person_loglik(prob.data, down)) / (2 * eps)
     np.testing.assert_allclose(grad, fd, atol=1e-6, rtol=1e-6)
     # and the per-person values sum to the panel kernel NUTS uses (an independent layout and code path)
     from hierchoice.model.likelihood import difference_data, task_loglik_numpy
@@ -107,12 +106,13 @@ def test_person_target_gradient_chain_rule_matches_finite_differences(ferry) -> 
     beta_fixed = bl.locations(prob, state.mu_free, state.gamma)
     m = beta_fixed[:, prob.rnd]
     r = prob.n_random
-    scratch = [np.empty(prob.n_attributes), np.empty(prob.n_others), np.empty(r), np.empty(r)]
+    scratch = [np.empty(prob.n_attributes), np.empty(prob.data.max_others), np.empty(r), np.empty(r)]
 
     def target(n, eta_n):  # type: ignore[no-untyped-def]
         beta = beta_fixed[n].copy()
         g, delta, y, grad = (a.copy() for a in scratch)
-        lp, _ = _log_target(prob.Dp[n], prob.maskp[n], prob.n_others, beta, eta_n, m[n], state.L, prob.rnd,
+        d = prob.data
+        lp, _ = _log_target(d.D, d.task_ptr, d.person_ptr[n], d.person_ptr[n + 1], beta, eta_n, m[n], state.L, prob.rnd,
                             prob.logn, prob.sign, g, delta, y, grad)
         return lp, grad
 
@@ -135,14 +135,13 @@ def test_person_information_matches_finite_difference_hessian(ferry) -> None:  #
     _, panel, spec = ferry
     prob = bl.blocked_problem(panel, spec)
     beta = np.random.default_rng(4).normal(0, 0.8, (prob.n_persons, prob.n_attributes))
-    F = person_information(prob.Dp, prob.maskp, prob.n_others, beta)
+    F = person_information(prob.data, beta)
     eps = 1e-5
     for k in range(prob.n_attributes):
         up, down = beta.copy(), beta.copy()
         up[:, k] += eps
         down[:, k] -= eps
-        hk = (person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, up)[1]
-              - person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, down)[1]) / (2 * eps)
+        hk = (person_loglik_grad(prob.data, up)[1] - person_loglik_grad(prob.data, down)[1]) / (2 * eps)
         np.testing.assert_allclose(F[:, :, k], -hk, atol=1e-6)
 
 
@@ -164,13 +163,13 @@ def test_mala_pass_samples_one_persons_conditional() -> None:
     panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
     prob = bl.blocked_problem(panel, _centred(sim.spec))
     n = 3000
-    Dp = np.ascontiguousarray(np.repeat(prob.Dp[:1], n, axis=0))
-    maskp = np.ascontiguousarray(np.repeat(prob.maskp[:1], n, axis=0))
+    rep = prob.data.persons(np.zeros(n, dtype=np.int64))  # person 0's cells, n times
+    Dr, tptr, pptr, n_o = rep.D, rep.task_ptr, rep.person_ptr, rep.max_others
     r = prob.n_random
     L = np.array([[0.8, 0, 0], [0.3, 0.6, 0], [-0.2, 0.1, 0.7]])
     m = np.tile([0.5, -0.4, 0.2], (n, 1))
     rng = np.random.default_rng(12)
-    F = person_information(Dp[:1], maskp[:1], prob.n_others, m[:1])[0]
+    F = person_information(prob.data.persons(slice(0, 1)), m[:1])[0]
     Q = np.linalg.inv(L @ L.T)
     R = np.ascontiguousarray(np.broadcast_to(np.linalg.cholesky(Q + F), (n, r, r)))
     beta_fixed = m.copy()
@@ -182,16 +181,15 @@ def test_mala_pass_samples_one_persons_conditional() -> None:
         log_u = np.full((steps, n), -np.inf) if accept_all else np.log(rng.random((steps, n)))
         # one step per call, carrying the likelihood cache from call to call as the sampler does
         for s in range(steps):
-            _MALA[1](Dp, maskp, prob.n_others, beta_fixed, eta, m, L, R, prob.rnd, prob.logn, prob.sign,
+            _MALA[1](Dr, tptr, pptr, n_o, beta_fixed, eta, m, L, R, prob.rnd, prob.logn, prob.sign,
                      np.full(n, 1.6 if accept_all else 1.0), xi[s:s + 1], log_u[s:s + 1], s > 0, ll.copy(), g.copy(),
                      acc, ll, g)
         return eta
 
     eta = run(150, False)
     draws = m[0] + rng.standard_normal((400_000, r)) @ L.T
-    Dfull = np.ascontiguousarray(np.repeat(prob.Dp[:1], 20_000, axis=0))
-    mfull = np.ascontiguousarray(np.repeat(prob.maskp[:1], 20_000, axis=0))
-    logw = np.concatenate([person_loglik(Dfull, mfull, prob.n_others, draws[i:i + 20_000])
+    full = prob.data.persons(np.zeros(20_000, dtype=np.int64))
+    logw = np.concatenate([person_loglik(full, draws[i:i + 20_000])
                            for i in range(0, draws.shape[0], 20_000)])
     w = np.exp(logw - logw.max())
     w /= w.sum()
@@ -387,7 +385,7 @@ def test_likelihood_cache_matches_the_state(ferry) -> None:  # type: ignore[no-u
             bl.sweep(prob, pop, shards, rng, settings, None, None)  # ends with the interweaving step
         assert st.cache is not None
         beta = bl.person_betas(prob, st)
-        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
+        ll, g = person_loglik_grad(prob.data, beta)
         J = np.where(prob.logn, beta[:, prob.rnd], 1.0)
         np.testing.assert_allclose(st.cache[0], ll, rtol=1e-9, atol=1e-9)
         np.testing.assert_allclose(st.cache[1], g[:, prob.rnd] * J, rtol=1e-8, atol=1e-9)
@@ -475,7 +473,8 @@ def test_results_do_not_depend_on_the_parallel_kernel(ferry) -> None:  # type: i
     for kernel in _MALA:
         eta, acc, ll = st.eta.copy(), np.empty(prob.n_persons), np.empty(prob.n_persons)
         g = np.empty((prob.n_persons, prob.n_random))
-        kernel(prob.Dp, prob.maskp, prob.n_others, beta_fixed, eta, m, st.L, R, prob.rnd, prob.logn, prob.sign,
+        d = prob.data
+        kernel(d.D, d.task_ptr, d.person_ptr, d.max_others, beta_fixed, eta, m, st.L, R, prob.rnd, prob.logn, prob.sign,
                np.full(prob.n_persons, 0.3), xi, log_u, False, ll, g, acc, ll, g)
         out.append((eta, acc))
     np.testing.assert_array_equal(out[0][0], out[1][0])

@@ -14,7 +14,8 @@ from scipy.special import log_softmax
 from test_likelihood import _random_panel
 
 import hierchoice as hc
-from hierchoice.model.likelihood import difference_data, task_loglik_graph, task_loglik_numpy
+from hierchoice.model.build import build_model
+from hierchoice.model.likelihood import difference_data, ragged_differences, task_loglik_graph, task_loglik_numpy
 from hierchoice.model.logit_op import (
     _exp_nonpositive,
     _log_positive,
@@ -24,7 +25,6 @@ from hierchoice.model.logit_op import (
     panel_logit_loglik,
     register_jax,
 )
-from hierchoice.model.build import build_model
 
 
 def test_vector_exp_matches_numpy_to_rounding():
@@ -52,6 +52,14 @@ def test_vector_log_matches_numpy_to_rounding():
     assert out[x == 1.0][0] == 0.0
 
 
+def _op(X, available, task_mask, chosen):
+    return op_layout(ragged_differences(X, available, task_mask, chosen))
+
+
+def _kernel(op, beta):
+    return loglik_and_grad(op.D, op.mask, op.owner, op.buckets, beta)
+
+
 def _reference_total(X, available, task_mask, chosen, beta):
     """sum over real tasks of log P(chosen) by scipy's log_softmax over the available alternatives."""
     u = np.where(available, np.einsum("ptjk,pk->ptj", X, beta), -np.inf)
@@ -66,13 +74,13 @@ def test_kernel_equals_log_softmax_and_autodiff_of_the_plain_graph(shape):
     n_p, n_t, n_j, n_k = shape
     X, av, tm, ch = _random_panel(rng, n_p=n_p, n_t=n_t, n_j=n_j, n_k=n_k)
     data = difference_data(X, av, tm, ch)
-    D, mask = op_layout(data)
+    op = _op(X, av, tm, ch)
     b = pt.dmatrix("b")
     plain = task_loglik_graph(data, [b[:, k] for k in range(n_k)]).sum()
     f_plain = pytensor.function([b], [plain, pytensor.grad(plain, b)])
     for scale in (0.3, 2.0, 8.0):
         beta = rng.normal(0, scale, (n_p, n_k))
-        total, grad = loglik_and_grad(D, mask, beta)
+        total, grad = _kernel(op, beta)
         ref_total, ref_grad = f_plain(beta)
         np.testing.assert_allclose(total, _reference_total(X, av, tm, ch, beta), rtol=1e-10)
         np.testing.assert_allclose(total, ref_total, rtol=1e-10)
@@ -83,8 +91,8 @@ def test_kernel_equals_log_softmax_and_autodiff_of_the_plain_graph(shape):
 def test_kernel_is_stable_at_huge_utility_differences(delta):
     X = np.zeros((1, 1, 2, 1))
     X[0, 0, 1, 0] = 1.0
-    data = difference_data(X, np.ones((1, 1, 2), bool), np.ones((1, 1), bool), np.zeros((1, 1), int))
-    total, grad = loglik_and_grad(*op_layout(data), np.array([[delta]]))
+    op = _op(X, np.ones((1, 1, 2), bool), np.ones((1, 1), bool), np.zeros((1, 1), int))
+    total, grad = _kernel(op, np.array([[delta]]))
     # exact: log P(chosen) = -softplus(delta); its derivative is -sigmoid(delta)
     np.testing.assert_allclose(total, -np.logaddexp(0.0, delta), rtol=1e-14)
     np.testing.assert_allclose(grad[0, 0], -0.5 * (1 + np.tanh(delta / 2)), atol=1e-300)
@@ -95,24 +103,23 @@ def test_padded_tasks_and_unavailable_alternatives_contribute_nothing():
     X, av, tm, ch = _random_panel(rng, n_p=6, n_t=7, n_j=4, n_k=2)
     data = difference_data(X, av, tm, ch)
     beta = rng.normal(size=(6, 2))
-    total, _ = loglik_and_grad(*op_layout(data), beta)
+    total, _ = _kernel(_op(X, av, tm, ch), beta)
     np.testing.assert_allclose(total, task_loglik_numpy(data, beta).sum(), rtol=1e-12)
     # moving the attributes of unavailable alternatives and padded tasks changes nothing
     X2 = np.where((av & tm[..., None])[..., None], X, X + 100.0)
-    total2, _ = loglik_and_grad(*op_layout(difference_data(X2, av, tm, ch)), beta)
+    total2, _ = _kernel(_op(X2, av, tm, ch), beta)
     assert total2 == pytest.approx(total, rel=1e-12)
 
 
 def test_op_in_a_graph_under_c_and_numba_backends():
     rng = np.random.default_rng(9)
     X, av, tm, ch = _random_panel(rng, n_p=25, n_t=6, n_j=3, n_k=3)
-    data = difference_data(X, av, tm, ch)
-    D, mask = op_layout(data)
+    op = _op(X, av, tm, ch)
     b = pt.dmatrix("b")
-    total = panel_logit_loglik(b * 1.0, D, mask)
+    total = panel_logit_loglik(b * 1.0, *op)
     outs = [total, pytensor.grad(total, b)]
     beta = rng.normal(size=(25, 3))
-    ref_total, ref_grad = loglik_and_grad(D, mask, beta)
+    ref_total, ref_grad = _kernel(op, beta)
     for mode in ("FAST_RUN", "NUMBA"):
         value, grad = pytensor.function([b], outs, mode=mode)(beta)
         np.testing.assert_allclose(value, ref_total, rtol=1e-12)
@@ -121,9 +128,9 @@ def test_op_in_a_graph_under_c_and_numba_backends():
 
 def test_second_derivatives_are_refused_clearly():
     X, av, tm, ch = _random_panel(np.random.default_rng(2), n_p=3, n_t=2, n_j=3, n_k=2)
-    D, mask = op_layout(difference_data(X, av, tm, ch))
+    op = _op(X, av, tm, ch)
     b = pt.dmatrix("b")
-    g = pytensor.grad(panel_logit_loglik(b, D, mask), b)
+    g = pytensor.grad(panel_logit_loglik(b, *op), b)
     with pytest.raises(Exception, match="second derivatives"):
         pytensor.function([b], pytensor.grad(g.sum(), b))
 
@@ -136,15 +143,15 @@ def test_jax_implementation_matches_the_kernel():
     assert register_jax()
     rng = np.random.default_rng(4)
     X, av, tm, ch = _random_panel(rng, n_p=30, n_t=5, n_j=4, n_k=3)
-    D, mask = op_layout(difference_data(X, av, tm, ch))
+    op = _op(X, av, tm, ch)
     beta = rng.normal(size=(30, 3))
-    ref_total, ref_grad = loglik_and_grad(D, mask, beta)
-    total, grad = jax_loglik_and_grad(beta, D, mask)
+    ref_total, ref_grad = _kernel(op, beta)
+    total, grad = jax_loglik_and_grad(beta, *op)
     np.testing.assert_allclose(float(total), ref_total, rtol=1e-12)
     np.testing.assert_allclose(np.asarray(grad), ref_grad, rtol=1e-10, atol=1e-12)
     # and through PyTensor's JAX backend, gradient included
     b = pt.dmatrix("b")
-    value = panel_logit_loglik(b * 1.0, D, mask)
+    value = panel_logit_loglik(b * 1.0, *op)
     f = pytensor.function([b], [value, pytensor.grad(value, b)], mode="JAX")
     v, g = f(beta)
     np.testing.assert_allclose(v, ref_total, rtol=1e-12)

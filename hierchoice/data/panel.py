@@ -29,7 +29,7 @@ May import: ``hierchoice.exceptions``, ``hierchoice.spec`` and every other modul
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -59,7 +59,7 @@ from .validate import (
     _prepare,
 )
 
-__all__ = ["ChoicePanel", "load_panel"]
+__all__ = ["ChoicePanel", "PanelCells", "csr_pointers", "load_panel"]
 
 # Term, ValidationSummary, read_table and _label are defined in the modules below and used here; other stages also
 # import them from hierchoice.data.panel, so keep these imports even if this module stops using one.
@@ -68,13 +68,118 @@ __all__ = ["ChoicePanel", "load_panel"]
 # --------------------------------------------------------------------------- the panel
 
 
-class ChoicePanel:
-    """A validated panel of choice tasks as dense, labelled arrays.
+def csr_pointers(counts: np.ndarray) -> np.ndarray:
+    """Offsets ``[0, c0, c0 + c1, ...]`` of consecutive groups of sizes ``counts`` (compressed sparse rows)."""
+    out = np.zeros(len(counts) + 1, dtype=np.int64)
+    np.cumsum(counts, out=out[1:])
+    return out
 
-    Build it with :meth:`from_frame`, :meth:`from_file` or :func:`load_panel`.
+
+@dataclass(frozen=True)
+class PanelCells:
+    """The panel's real rows only: each available alternative of each real task, nothing padded.
+
+    Rows are stored task after task and tasks person after person (compressed sparse rows), so memory is linear
+    in the number of real (task, alternative) rows whatever the spread of tasks per person.
 
     Attributes
     ----------
+    x : ndarray, shape (n_rows, n_attributes)
+        Attribute values in the user's units.
+    alt : ndarray of int64, shape (n_rows,)
+        The alternative of each row (an index into ``ChoicePanel.alternatives``).
+    row_ptr : ndarray of int64, shape (n_tasks + 1,)
+        The rows of task ``i`` are ``row_ptr[i]:row_ptr[i + 1]``, in the order of the alternatives.
+    person_ptr : ndarray of int64, shape (n_persons + 1,)
+        The tasks of person ``n`` are ``person_ptr[n]:person_ptr[n + 1]``, in the person's task order.
+    chosen : ndarray of int64, shape (n_tasks,)
+        The chosen alternative of each task.
+    position : ndarray of int64, shape (n_tasks,)
+        The task's column in the padded (person, task) arrays.
+    task_id : ndarray of object, shape (n_tasks,)
+        The user's task ids.
+    lag_missing : ndarray of bool, shape (n_tasks,)
+    """
+
+    x: np.ndarray
+    alt: np.ndarray
+    row_ptr: np.ndarray
+    person_ptr: np.ndarray
+    chosen: np.ndarray
+    position: np.ndarray
+    task_id: np.ndarray
+    lag_missing: np.ndarray
+
+    @property
+    def n_tasks(self) -> int:
+        return int(self.row_ptr.size - 1)
+
+    @property
+    def n_persons(self) -> int:
+        return int(self.person_ptr.size - 1)
+
+    @property
+    def task_owner(self) -> np.ndarray:
+        """(n_tasks,) the person index of each task."""
+        return np.repeat(np.arange(self.n_persons), np.diff(self.person_ptr))
+
+    @property
+    def row_task(self) -> np.ndarray:
+        """(n_rows,) the task index of each row."""
+        return np.repeat(np.arange(self.n_tasks), np.diff(self.row_ptr))
+
+    @classmethod
+    def from_dense(cls, X: np.ndarray, available: np.ndarray, task_mask: np.ndarray, chosen: np.ndarray,
+                   task_ids: np.ndarray | None = None, lag_missing: np.ndarray | None = None) -> PanelCells:
+        """The real rows of padded (person, task, alternative[, attribute]) arrays."""
+        p, t = np.nonzero(task_mask)
+        pr, tr, jr = np.nonzero(available & task_mask[:, :, None])
+        number = np.zeros(task_mask.shape, dtype=np.int64)
+        number[p, t] = np.arange(p.size)
+        return cls(
+            x=np.ascontiguousarray(X[pr, tr, jr], dtype=float), alt=jr.astype(np.int64),
+            row_ptr=csr_pointers(np.bincount(number[pr, tr], minlength=p.size)),
+            person_ptr=csr_pointers(task_mask.sum(axis=1)), chosen=np.asarray(chosen)[p, t].astype(np.int64),
+            position=t.astype(np.int64),
+            task_id=(np.asarray(task_ids, dtype=object)[p, t] if task_ids is not None
+                     else np.full(p.size, None, dtype=object)),
+            lag_missing=(np.asarray(lag_missing, dtype=bool)[p, t] if lag_missing is not None
+                         else np.zeros(p.size, dtype=bool)),
+        )
+
+    def to_dense(self, n_alternatives: int) -> dict[str, np.ndarray]:
+        """The padded arrays ``X``, ``available``, ``task_mask``, ``chosen``, ``task_ids``, ``lag_missing``."""
+        n_p = self.n_persons
+        n_t = max(int(self.position.max(initial=-1)) + 1, 1)
+        owner = self.task_owner
+        rt = self.row_task
+        X = np.zeros((n_p, n_t, n_alternatives, self.x.shape[1]))
+        X[owner[rt], self.position[rt], self.alt] = self.x
+        available = np.zeros((n_p, n_t, n_alternatives), dtype=bool)
+        available[owner[rt], self.position[rt], self.alt] = True
+        task_mask = np.zeros((n_p, n_t), dtype=bool)
+        task_mask[owner, self.position] = True
+        chosen = np.full((n_p, n_t), -1, dtype=np.int64)
+        chosen[owner, self.position] = self.chosen
+        task_ids = np.full((n_p, n_t), None, dtype=object)
+        task_ids[owner, self.position] = self.task_id
+        lag_missing = np.zeros((n_p, n_t), dtype=bool)
+        lag_missing[owner, self.position] = self.lag_missing
+        return {"X": X, "available": available, "task_mask": task_mask, "chosen": chosen, "task_ids": task_ids,
+                "lag_missing": lag_missing}
+
+
+class ChoicePanel:
+    """A validated panel of choice tasks: its real rows (:class:`PanelCells`) and labels.
+
+    Build it with :meth:`from_frame`, :meth:`from_file` or :func:`load_panel`. The panel keeps only the real rows
+    (:attr:`cells`: every available alternative of every real task, in compressed sparse rows), so its memory is
+    linear in the data; fitting reads only those. The padded arrays below are built from them on first use (and
+    kept), for the stages that work on (person, task, alternative) grids.
+
+    Attributes
+    ----------
+    cells : :class:`PanelCells`
     X : ndarray, shape (n_persons, n_tasks, n_alternatives, n_attributes)
         Attribute values in the user's units (0 where unavailable or padded).
     available : ndarray of bool, shape (n_persons, n_tasks, n_alternatives)
@@ -95,12 +200,6 @@ class ChoicePanel:
     def __init__(
         self,
         *,
-        X: np.ndarray,
-        available: np.ndarray,
-        task_mask: np.ndarray,
-        chosen: np.ndarray,
-        task_ids: np.ndarray,
-        lag_missing: np.ndarray,
         Z: np.ndarray,
         persons: Sequence[Any],
         alternatives: Sequence[str],
@@ -108,13 +207,24 @@ class ChoicePanel:
         covariates: Sequence[str],
         summary: ValidationSummary,
         spec: Spec,
+        cells: PanelCells | None = None,
+        X: np.ndarray | None = None,
+        available: np.ndarray | None = None,
+        task_mask: np.ndarray | None = None,
+        chosen: np.ndarray | None = None,
+        task_ids: np.ndarray | None = None,
+        lag_missing: np.ndarray | None = None,
     ) -> None:
-        self.X = X
-        self.available = available
-        self.task_mask = task_mask
-        self.chosen = chosen
-        self.task_ids = task_ids
-        self.lag_missing = lag_missing
+        dense = None
+        if cells is None:  # from padded arrays: keep them, they are already in memory
+            if X is None or available is None or task_mask is None or chosen is None:
+                raise DataError("A ChoicePanel needs its cells, or the arrays X, available, task_mask and chosen.")
+            cells = PanelCells.from_dense(X, available, task_mask, chosen, task_ids, lag_missing)
+            dense = cells.to_dense(len(alternatives)) if task_ids is None or lag_missing is None else {
+                "X": X, "available": available, "task_mask": task_mask, "chosen": chosen, "task_ids": task_ids,
+                "lag_missing": lag_missing}
+        self.cells = cells
+        self._dense = dense
         self.Z = Z
         self.persons = tuple(persons)
         self.alternatives = tuple(alternatives)
@@ -122,6 +232,35 @@ class ChoicePanel:
         self.covariates = tuple(covariates)
         self.summary = summary
         self.spec = spec
+
+    def _padded(self) -> dict[str, np.ndarray]:
+        if self._dense is None:
+            self._dense = self.cells.to_dense(len(self.alternatives))
+        return self._dense
+
+    @property
+    def X(self) -> np.ndarray:
+        return self._padded()["X"]
+
+    @property
+    def available(self) -> np.ndarray:
+        return self._padded()["available"]
+
+    @property
+    def task_mask(self) -> np.ndarray:
+        return self._padded()["task_mask"]
+
+    @property
+    def chosen(self) -> np.ndarray:
+        return self._padded()["chosen"]
+
+    @property
+    def task_ids(self) -> np.ndarray:
+        return self._padded()["task_ids"]
+
+    @property
+    def lag_missing(self) -> np.ndarray:
+        return self._padded()["lag_missing"]
 
     # ---- construction
 
@@ -148,22 +287,21 @@ class ChoicePanel:
 
     @property
     def n_persons(self) -> int:
-        return int(self.X.shape[0])
+        return self.cells.n_persons
 
     @property
     def n_tasks(self) -> int:
         """The total number of (unpadded) choice tasks."""
-        return int(self.task_mask.sum())
+        return self.cells.n_tasks
 
     @property
     def tasks_per_person(self) -> np.ndarray:
-        return self.task_mask.sum(axis=1)
+        return np.diff(self.cells.person_ptr)
 
     @property
     def chance_rate(self) -> float:
         """Mean over tasks of 1 / number of available alternatives (the hit rate of guessing)."""
-        n_avail = self.available.sum(axis=2)[self.task_mask]
-        return float(np.mean(1.0 / n_avail))
+        return float(np.mean(1.0 / np.diff(self.cells.row_ptr)))
 
     def __repr__(self) -> str:
         return (
@@ -213,15 +351,16 @@ class ChoicePanel:
     def to_long(self) -> pd.DataFrame:
         """The panel back as a long table of model columns (coded attributes, available rows only)."""
         cols = self.spec.columns
-        p, t, j = np.nonzero(self.available & self.task_mask[:, :, None])
+        c = self.cells
+        task = c.row_task
         out = pd.DataFrame({
-            cols.person: np.asarray(self.persons, dtype=object)[p],
-            cols.task: self.task_ids[p, t],
-            cols.alternative: np.asarray(self.alternatives, dtype=object)[j],
-            cols.chosen: (self.chosen[p, t] == j).astype(int),
+            cols.person: np.asarray(self.persons, dtype=object)[c.task_owner[task]],
+            cols.task: c.task_id[task],
+            cols.alternative: np.asarray(self.alternatives, dtype=object)[c.alt],
+            cols.chosen: (c.chosen[task] == c.alt).astype(int),
         })
         for k, name in enumerate(self.attributes):
-            out[name] = self.X[p, t, j, k]
+            out[name] = c.x[:, k]
         return out
 
     def with_spec(self, spec: Spec | Mapping[str, Any] | str | Path) -> ChoicePanel:
@@ -242,11 +381,12 @@ class ChoicePanel:
             )
         terms = [_retaste(term, spec) for term in self.terms]
         _check_enough_persons(self.n_persons, terms, spec, None)
-        return ChoicePanel(
-            X=self.X, available=self.available, task_mask=self.task_mask, chosen=self.chosen,
-            task_ids=self.task_ids, lag_missing=self.lag_missing, Z=self.Z, persons=self.persons,
-            alternatives=self.alternatives, terms=terms, covariates=self.covariates, summary=self.summary, spec=spec,
+        panel = ChoicePanel(
+            cells=self.cells, Z=self.Z, persons=self.persons, alternatives=self.alternatives, terms=terms,
+            covariates=self.covariates, summary=self.summary, spec=spec,
         )
+        panel._dense = self._dense
+        return panel
 
     def with_tasks(self, keep: np.ndarray, reason: str) -> ChoicePanel:
         """A panel with only the tasks where ``keep`` (person, task) is true, counted under ``reason``.
@@ -368,12 +508,12 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
         cov_values += vals
     _check_covariates_vary(cov_names, cov_values)
 
-    # 10. dense arrays
-    arrays = _dense_arrays(df, cols, person_codes, len(person_labels), alternatives, terms, values, chosen, avail,
-                           lag_missing)
+    # 10. the real rows, task after task, person after person
+    cells = _cells(df, cols, person_codes, len(person_labels), alternatives, terms, values, chosen, avail,
+                   lag_missing)
     Z = np.column_stack(cov_values) if cov_values else np.zeros((len(person_labels), 0))
     panel = ChoicePanel(
-        **arrays, Z=Z, persons=person_labels.tolist(), alternatives=alternatives, terms=terms,
+        cells=cells, Z=Z, persons=person_labels.tolist(), alternatives=alternatives, terms=terms,
         covariates=cov_names, summary=summary, spec=spec,
     )
     _fill_counts(panel)
@@ -381,7 +521,7 @@ def _build(df: pd.DataFrame, spec: Spec) -> ChoicePanel:
     return panel
 
 
-def _dense_arrays(
+def _cells(
     df: pd.DataFrame,
     cols: ColumnRoles,
     person_codes: np.ndarray,
@@ -392,37 +532,33 @@ def _dense_arrays(
     chosen: pd.Series,
     avail: pd.Series,
     lag_missing: pd.Series,
-) -> dict[str, np.ndarray]:
-    """Pad the long rows into the panel's arrays, each person's tasks packed from 0 in ``_pos`` order.
-
-    Returns ``X`` (person, task, alt, attr), ``available`` (person, task, alt), and ``task_mask``,
-    ``chosen``, ``task_ids`` and ``lag_missing``, each (person, task).
-    """
+) -> PanelCells:
+    """The long rows as :class:`PanelCells`: available rows only, each person's tasks numbered from 0 in ``_pos``
+    order (re-packed after any dropped task), rows in the order of the alternatives."""
     t_idx = df["_pos"].to_numpy() - df.groupby(person_codes)["_pos"].transform("min").to_numpy()
-    # re-pack after any dropped task so that tasks are contiguous from 0
-    dense_t = pd.Series(t_idx).groupby(person_codes).rank(method="dense").to_numpy().astype(int) - 1
-    n_t = int(dense_t.max()) + 1
+    dense_t = pd.Series(t_idx).groupby(person_codes).rank(method="dense").to_numpy().astype(np.int64) - 1
     alt_index = {a: i for i, a in enumerate(alternatives)}
-    j_idx = df[cols.alternative].map(alt_index).to_numpy()  # (row,)
-    n_j, n_k = len(alternatives), len(terms)
-
-    X = np.zeros((n_p, n_t, n_j, n_k))
+    j_idx = df[cols.alternative].map(alt_index).to_numpy().astype(np.int64)
+    keep = avail.to_numpy()
+    order = np.lexsort((j_idx, dense_t, person_codes))
+    order = order[keep[order]]
+    p, t, j = person_codes[order].astype(np.int64), dense_t[order], j_idx[order]
+    new_task = np.ones(order.size, dtype=bool)
+    new_task[1:] = (p[1:] != p[:-1]) | (t[1:] != t[:-1])
+    first = np.flatnonzero(new_task)
+    task_of_row = np.cumsum(new_task) - 1
+    ch = chosen.to_numpy()[order]
+    chosen_alt = np.full(first.size, -1, dtype=np.int64)
+    chosen_alt[task_of_row[ch]] = j[ch]
+    x = np.empty((order.size, len(terms)))
     for k, term in enumerate(terms):
-        X[person_codes, dense_t, j_idx, k] = values[term.name].to_numpy(float)
-    available = np.zeros((n_p, n_t, n_j), dtype=bool)
-    available[person_codes, dense_t, j_idx] = avail.to_numpy()
-    task_mask = np.zeros((n_p, n_t), dtype=bool)
-    task_mask[person_codes, dense_t] = True
-    chosen_idx = np.full((n_p, n_t), -1, dtype=np.int64)
-    ch = chosen.to_numpy()
-    chosen_idx[person_codes[ch], dense_t[ch]] = j_idx[ch]
-    task_ids = np.full((n_p, n_t), None, dtype=object)
-    task_ids[person_codes, dense_t] = df[cols.task].to_numpy(dtype=object)
-    lm = np.zeros((n_p, n_t), dtype=bool)
-    lm[person_codes, dense_t] = lag_missing.to_numpy()
-    X[~available] = 0.0
-    return {"X": X, "available": available, "task_mask": task_mask, "chosen": chosen_idx, "task_ids": task_ids,
-            "lag_missing": lm}
+        x[:, k] = values[term.name].to_numpy(float)[order]
+    return PanelCells(
+        x=x, alt=j, row_ptr=np.append(first, order.size).astype(np.int64),
+        person_ptr=csr_pointers(np.bincount(p[first], minlength=n_p)), chosen=chosen_alt, position=t[first],
+        task_id=df[cols.task].to_numpy(dtype=object)[order][first],
+        lag_missing=lag_missing.to_numpy(dtype=bool)[order][first],
+    )
 
 
 def _fill_counts(panel: ChoicePanel) -> None:

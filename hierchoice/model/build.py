@@ -39,7 +39,7 @@ from .._backend import load_backend
 from ..data.panel import ChoicePanel, Term
 from ..exceptions import SpecError
 from ..spec import Spec, load_spec
-from .likelihood import DifferenceData, difference_data, task_loglik_graph
+from .likelihood import RaggedDifferences, cell_differences, difference_data, task_loglik_graph
 from .transforms import TasteMap, latent_to_coefficient
 
 __all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD"]
@@ -145,12 +145,11 @@ def model_layout(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path
     panel = panel.with_spec(spec)
     terms = panel.terms
     names = [t.name for t in terms]
-    avail = panel.available & panel.task_mask[:, :, None]
     scale = np.ones(len(terms))
     for k, term in enumerate(terms):
         if term.kind in _UNIT_KINDS:
             continue
-        values = panel.X[..., k][avail]
+        values = panel.cells.x[:, k]  # every available alternative of every real task
         sd = float(np.std(values)) if values.size else 0.0
         scale[k] = sd if sd > 0 else 1.0
     random = tuple(k for k, t in enumerate(terms) if t.taste != "fixed")
@@ -210,13 +209,13 @@ def _constant_centre(panel: ChoicePanel, terms: tuple[Term, ...], scale: np.ndar
     const = [k for k, t in enumerate(terms) if t.kind == "constant"]
     if not const or spec.constants is None:
         return None
-    avail = panel.available & panel.task_mask[:, :, None]
+    cells = panel.cells
     ref = panel.alternatives.index(spec.constants.reference)
     centre = np.zeros((len(terms), len(terms)))
     slopes = [k for k, t in enumerate(terms) if t.kind != "constant"]
 
     def mean_of(j: int, k: int) -> float:
-        v = panel.X[:, :, j, k][avail[:, :, j]] / scale[k]
+        v = cells.x[cells.alt == j, k] / scale[k]
         return float(v.mean()) if v.size else 0.0
 
     for a in const:
@@ -293,8 +292,8 @@ def _free_means(layout: ModelLayout, sigma: np.ndarray):  # type: ignore[no-unty
                          signature="(k)->(k)", dims="attribute")
 
 
-def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> DifferenceData:
-    return difference_data(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
+def _difference_data(panel: ChoicePanel, layout: ModelLayout) -> RaggedDifferences:
+    return cell_differences(panel.cells, scale=layout.scale)
 
 
 def _into_columns(values, columns: tuple[int, ...] | list[int], n_columns: int):  # type: ignore[no-untyped-def]
@@ -309,38 +308,38 @@ def _into_columns(values, columns: tuple[int, ...] | list[int], n_columns: int):
     return pt.dot(values, pt.constant(select))
 
 
-def _panel_loglik(data: DifferenceData, beta, likelihood: str, person_batch: int | None = None):  # type: ignore[no-untyped-def]
+def _panel_loglik(panel: ChoicePanel, layout: ModelLayout, beta, likelihood: str,  # type: ignore[no-untyped-def]
+                  person_batch: int | None = None):
     """The scalar panel log-likelihood of the (person, attribute) tastes ``beta``.
 
     With ``person_batch``, an unbiased estimate from a random batch of persons (see :func:`build_model`).
     """
     if likelihood == "graph":
+        data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
         return task_loglik_graph(data, [beta[:, k] for k in range(data.D.shape[0])]).sum()
     load_backend()
     import pytensor
 
-    from .logit_op import op_layout, panel_logit_loglik
+    from .logit_op import batch_layout, op_layout, padded_by_person, panel_logit_loglik
 
-    D, mask = op_layout(data)
-    n_k, n_o, _ = D.shape
-    n_p = data.D.shape[1]
+    data = _difference_data(panel, layout)
     if person_batch is not None:
-        load_backend()
         import pymc as pm
 
-        # (person, ...) views so that one random index picks whole persons
-        D_p = pytensor.shared(np.ascontiguousarray(D.reshape(n_k, n_o, n_p, -1).transpose(2, 0, 1, 3)),
-                              name="panel_differences_by_person", borrow=True)
-        mask_p = pytensor.shared(np.ascontiguousarray(mask.reshape(n_o, n_p, -1).transpose(1, 0, 2)),
-                                 name="panel_available_by_person", borrow=True)
+        # (person, ...) views padded to one width, so that one random index picks whole persons
+        D_p, mask_p, n_o, n_t = padded_by_person(data)
+        n_k, n_p = data.n_attributes, data.n_persons
+        D_p = pytensor.shared(D_p, name="panel_differences_by_person", borrow=True)
+        mask_p = pytensor.shared(mask_p, name="panel_available_by_person", borrow=True)
         idx = pm.Minibatch(np.arange(n_p), batch_size=int(person_batch))
-        D_b = D_p[idx].transpose(1, 2, 0, 3).reshape((n_k, n_o, -1))
-        mask_b = mask_p[idx].transpose(1, 0, 2).reshape((n_o, -1))
-        return panel_logit_loglik(beta[idx], D_b, mask_b) * (n_p / person_batch)
+        D_b = D_p[idx].transpose(1, 2, 0, 3).reshape((n_k, -1))
+        mask_b = mask_p[idx].transpose(1, 0, 2).reshape((-1,))
+        cell_task, owner, buckets = batch_layout(int(person_batch), n_o, n_t)
+        return panel_logit_loglik(beta[idx], D_b, mask_b, cell_task, owner, buckets) * (n_p / person_batch)
     # shared, not constants: compiled code then neither embeds the data nor depends on it for caching
-    D = pytensor.shared(D, name="panel_differences", borrow=True)
-    mask = pytensor.shared(mask, name="panel_available", borrow=True)
-    return panel_logit_loglik(beta, D, mask)
+    op = op_layout(data)
+    names = ("panel_differences", "panel_available", "panel_cell_task", "panel_task_person", "panel_buckets")
+    return panel_logit_loglik(beta, *(pytensor.shared(v, name=nm, borrow=True) for v, nm in zip(op, names)))
 
 
 def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None, *,  # type: ignore[no-untyped-def]
@@ -394,7 +393,6 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
     spec = panel.spec if spec is None else load_spec(spec)
     panel = panel.with_spec(spec)
     layout = model_layout(panel, spec) if layout is None else layout
-    data = _difference_data(panel, layout)
     names = layout.names
     rnd = list(layout.random)
     n_p, n_k, n_r = panel.n_persons, len(names), len(rnd)
@@ -453,7 +451,7 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
         beta = latent_to_coefficient(theta, layout.taste_map, backend="pytensor")
         beta = pt.broadcast_to(beta, (n_p, n_k))
 
-        pm.Potential("panel_loglik", _panel_loglik(data, beta, likelihood, person_batch))
+        pm.Potential("panel_loglik", _panel_loglik(panel, layout, beta, likelihood, person_batch))
 
         # --- reported quantities, in the user's units
         unit = np.array([layout.unit_factor(k) for k in range(n_k)])

@@ -27,7 +27,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["DifferenceData", "difference_data", "task_loglik_numpy", "task_loglik_graph", "choice_probabilities"]
+from ..data.panel import PanelCells, csr_pointers
+
+__all__ = ["DifferenceData", "RaggedDifferences", "choice_probabilities", "difference_data", "ragged_differences",
+           "cell_differences", "task_loglik_cells", "task_loglik_graph", "task_loglik_numpy"]
 
 
 @dataclass(frozen=True)
@@ -66,6 +69,142 @@ def difference_data(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray,
     others = np.where(mask[..., None], others, 0.0)
     D = np.ascontiguousarray(np.moveaxis(others, -1, 0).reshape(n_k, n_p, n_t * (n_j - 1)))
     return DifferenceData(D=D, mask=mask.reshape(n_p, -1).astype(float), n_tasks=n_t, n_others=n_j - 1)
+
+
+@dataclass(frozen=True)
+class RaggedDifferences:
+    """Attribute differences of the real cells only: no padded task, no unavailable alternative.
+
+    A *cell* is one (task, non-chosen available alternative) pair. Cells are stored contiguously, task after task,
+    and tasks person after person (compressed sparse rows, twice), so memory and the cost of a log-likelihood
+    are linear in the number of real cells whatever the spread of tasks per person or of alternatives per task.
+
+    Attributes
+    ----------
+    D : ndarray, shape (n_cells, n_attributes)
+        ``x_ntj - x_ntc`` for each cell.
+    task_ptr : ndarray of int64, shape (n_tasks + 1,)
+        The cells of task ``i`` are ``D[task_ptr[i]:task_ptr[i + 1]]`` (none for a task with one alternative).
+    person_ptr : ndarray of int64, shape (n_persons + 1,)
+        The tasks of person ``n`` are ``person_ptr[n]:person_ptr[n + 1]``.
+    task_position : ndarray of int64, shape (n_tasks,)
+        Each task's column in the panel's (person, task) arrays, to place per-task values back.
+    """
+
+    D: np.ndarray
+    task_ptr: np.ndarray
+    person_ptr: np.ndarray
+    task_position: np.ndarray
+
+    @property
+    def n_persons(self) -> int:
+        return int(self.person_ptr.size - 1)
+
+    @property
+    def n_tasks(self) -> int:
+        return int(self.task_ptr.size - 1)
+
+    @property
+    def n_cells(self) -> int:
+        return int(self.D.shape[0])
+
+    @property
+    def n_attributes(self) -> int:
+        return int(self.D.shape[1])
+
+    @property
+    def task_owner(self) -> np.ndarray:
+        """(n_tasks,) the person index of each task."""
+        return np.repeat(np.arange(self.n_persons), np.diff(self.person_ptr))
+
+    @property
+    def cell_task(self) -> np.ndarray:
+        """(n_cells,) the task index of each cell."""
+        return np.repeat(np.arange(self.n_tasks), np.diff(self.task_ptr))
+
+    @property
+    def max_others(self) -> int:
+        """The largest number of cells in one task."""
+        return int(np.diff(self.task_ptr).max(initial=0))
+
+    def persons(self, index: np.ndarray | slice) -> RaggedDifferences:
+        """The data of the persons ``index`` (a slice gives views; an index array may repeat persons)."""
+        if isinstance(index, slice):
+            start, stop, step = index.indices(self.n_persons)
+            if step != 1:
+                raise ValueError("persons() takes a contiguous slice")
+            t0, t1 = int(self.person_ptr[start]), int(self.person_ptr[stop])
+            c0, c1 = int(self.task_ptr[t0]), int(self.task_ptr[t1])
+            return RaggedDifferences(D=self.D[c0:c1], task_ptr=self.task_ptr[t0 : t1 + 1] - c0,
+                                     person_ptr=self.person_ptr[start : stop + 1] - t0,
+                                     task_position=self.task_position[t0:t1])
+        index = np.asarray(index, dtype=np.int64)
+        n_t = np.diff(self.person_ptr)[index]
+        tasks = _ranges(self.person_ptr[index], n_t)
+        n_c = np.diff(self.task_ptr)[tasks]
+        cells = _ranges(self.task_ptr[tasks], n_c)
+        return RaggedDifferences(D=np.ascontiguousarray(self.D[cells]), task_ptr=csr_pointers(n_c),
+                                 person_ptr=csr_pointers(n_t), task_position=self.task_position[tasks])
+
+
+def _ranges(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """The concatenation of ``arange(s, s + c)`` over ``starts``, ``counts``."""
+    counts = np.asarray(counts, dtype=np.int64)
+    ptr = csr_pointers(counts)
+    return np.repeat(np.asarray(starts, dtype=np.int64) - ptr[:-1], counts) + np.arange(ptr[-1])
+
+
+def cell_differences(cells: PanelCells, scale: np.ndarray | None = None) -> RaggedDifferences:
+    """Build :class:`RaggedDifferences` from a panel's real rows (optionally dividing attributes by ``scale``).
+
+    Each task's non-chosen rows, minus its chosen row; tasks and cells keep the panel's order. Memory and time
+    are linear in the number of real rows.
+    """
+    task = cells.row_task
+    is_chosen = cells.alt == cells.chosen[task]
+    chosen_row = np.flatnonzero(is_chosen)  # one per task, in task order
+    others = np.flatnonzero(~is_chosen)
+    D = cells.x[others] - cells.x[chosen_row[task[others]]]
+    if scale is not None:
+        D = D / scale
+    return RaggedDifferences(D=np.ascontiguousarray(D, dtype=float),
+                             task_ptr=csr_pointers(np.bincount(task[others], minlength=cells.n_tasks)),
+                             person_ptr=cells.person_ptr, task_position=cells.position)
+
+
+def ragged_differences(X: np.ndarray, available: np.ndarray, task_mask: np.ndarray, chosen: np.ndarray,
+                       scale: np.ndarray | None = None) -> RaggedDifferences:
+    """:func:`cell_differences` of padded (person, task, alternative[, attribute]) arrays."""
+    return cell_differences(PanelCells.from_dense(X, available, task_mask, chosen), scale)
+
+
+def task_loglik_cells(data: RaggedDifferences, beta: np.ndarray, *, chunk_cells: int = 4_000_000) -> np.ndarray:
+    """Per-task log-probability of the observed choice on ragged cells, shape (..., n_tasks).
+
+    ``beta`` has shape (..., n_persons, n_attributes) in the units of ``data`` (leading axes, e.g. posterior
+    draws). The same stable formula as :func:`task_loglik_numpy`, with cost and memory linear in the real cells
+    (leading axes are taken in chunks of about ``chunk_cells`` (draw, cell) values). A task with one alternative
+    gives 0.
+    """
+    beta = np.asarray(beta, dtype=float)
+    lead = beta.shape[:-2]
+    flat = beta.reshape((-1,) + beta.shape[-2:])
+    person = data.task_owner[data.cell_task]
+    n_c = np.diff(data.task_ptr)
+    real = np.flatnonzero(n_c > 0)
+    starts = data.task_ptr[:-1][real]
+    cell_real = np.repeat(np.arange(real.size), n_c[real])  # each cell's index among the tasks with cells
+    out = np.zeros((flat.shape[0], data.n_tasks))
+    step = max(1, chunk_cells // max(data.n_cells, 1))
+    for s0 in range(0, flat.shape[0], step):
+        b = flat[s0 : s0 + step]
+        delta = np.einsum("ck,sck->sc", data.D, b[:, person, :]) if data.n_cells else np.zeros((b.shape[0], 0))
+        if not real.size:
+            continue
+        m = np.maximum(np.maximum.reduceat(delta, starts, axis=1), 0.0)
+        total = np.exp(-m) + np.add.reduceat(np.exp(delta - m[:, cell_real]), starts, axis=1)
+        out[s0 : s0 + step, real] = -(m + np.log(total))
+    return out.reshape(lead + (data.n_tasks,))
 
 
 def _stable_task_loglik(delta, mask, xp):  # type: ignore[no-untyped-def]

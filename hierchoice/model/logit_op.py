@@ -41,7 +41,7 @@ ADVI need only the gradient.
 from __future__ import annotations
 
 import functools
-from typing import Any
+from typing import Any, NamedTuple
 
 import numba
 import numpy as np
@@ -55,9 +55,10 @@ from pytensor.gradient import DisconnectedType, grad_not_implemented, grad_undef
 from pytensor.graph.basic import Apply
 from pytensor.graph.op import Op
 
-from .likelihood import DifferenceData
+from .likelihood import RaggedDifferences
 
-__all__ = ["PanelLogitLoglik", "panel_logit_loglik", "loglik_and_grad", "op_layout", "register_jax"]
+__all__ = ["OpData", "PanelLogitLoglik", "batch_layout", "loglik_and_grad", "op_layout", "padded_by_person",
+           "panel_logit_loglik", "register_jax"]
 
 
 # Vectorisable exp and log. LLVM cannot vectorise calls to libm's exp/log, and these
@@ -146,16 +147,22 @@ def _log_positive(x: np.ndarray, out: np.ndarray, scratch: np.ndarray) -> None:
 
 
 @numba.njit(cache=True, fastmath=_FAST, nogil=True, error_model="numpy")
-def loglik_and_grad(D: np.ndarray, mask: np.ndarray, beta: np.ndarray) -> tuple[float, np.ndarray]:
+def loglik_and_grad(D: np.ndarray, mask: np.ndarray, owner: np.ndarray, buckets: np.ndarray,
+                    beta: np.ndarray) -> tuple[float, np.ndarray]:
     """Total panel log-likelihood and its gradient with respect to ``beta``.
 
     Parameters
     ----------
-    D : ndarray, shape (n_attributes, n_others, n_persons * n_tasks)
-        Attribute differences against the chosen alternative, other-alternative-major
-        (see :func:`op_layout`); 0 where masked.
-    mask : ndarray, shape (n_others, n_persons * n_tasks)
-        1 where the other alternative is available in a real task, else 0.
+    D : ndarray, shape (n_attributes, n_cells)
+        Attribute differences against the chosen alternative in the bucketed layout of :func:`op_layout`.
+    mask : ndarray, shape (n_cells,)
+        1 for a real cell, 0 for padding (only the per-person minibatch view pads).
+    owner : ndarray of int64, shape (n_tasks,)
+        The person of each task.
+    buckets : ndarray of int64, shape (n_buckets, 4)
+        ``(n_others, first_task, first_cell, n_tasks)`` of each bucket: tasks with the same number of non-chosen
+        alternatives, whose cells are stored other-major (cell ``first_cell + j * n_tasks + i`` is other ``j``
+        of the bucket's task ``i``).
     beta : ndarray, shape (n_persons, n_attributes)
 
     Returns
@@ -163,121 +170,182 @@ def loglik_and_grad(D: np.ndarray, mask: np.ndarray, beta: np.ndarray) -> tuple[
     loglik : float
     grad : ndarray, shape (n_persons, n_attributes)
 
-    Persons are taken in blocks of about :data:`BLOCK_ROWS` tasks: within a block each
-    pass runs over contiguous arrays, so it compiles to SIMD code, and the block's
-    slice of ``D`` is still in cache when the gradient reads it again.
+    Within a bucket, tasks are taken in blocks of :data:`BLOCK_ROWS`: each pass runs over contiguous arrays, so
+    it compiles to SIMD code, and the block's slice of ``D`` is still in cache when the gradient reads it again.
+    No cell is padded, so the cost is linear in the number of real cells.
     """
-    n_k, n_o, n_i = D.shape
+    n_k = D.shape[0]
     n_p = beta.shape[0]
-    n_t = n_i // n_p
-    per_block = max(1, BLOCK_ROWS // max(n_t, 1))
-    width = per_block * n_t
-    x = np.empty((n_o + 1, width))  # utility differences, shifted; row n_o holds -m
-    ex = np.empty((n_o + 1, width))
-    scratch = np.empty((n_o + 1) * width)
-    b = np.empty(width)  # one attribute's tastes repeated over each person's tasks
+    width = BLOCK_ROWS
+    b = np.empty(width)  # one attribute's tastes of each task's person
     m = np.empty(width)  # m = max(0, max_j delta_j), the stabilising shift
     s = np.empty(width)
     log_s = np.empty(width)
-    grad = np.empty((n_p, n_k))
+    beta_t = np.ascontiguousarray(beta.T)  # (attribute, person): each attribute's gathers read one row
+    grad_t = np.zeros((n_k, n_p))
     total = 0.0
-    for p0 in range(0, n_p, per_block):
-        p1 = min(p0 + per_block, n_p)
-        i0 = p0 * n_t
-        w = (p1 - p0) * n_t
-        for j in range(n_o):  # x[j, i] = sum_k D[k, j, i] beta[p(i), k]
-            for i in range(w):
-                x[j, i] = 0.0
-        for k in range(n_k):
-            for p in range(p0, p1):
-                b[(p - p0) * n_t : (p - p0 + 1) * n_t] = beta[p, k]
-            for j in range(n_o):
-                d = D[k, j, i0 : i0 + w]
-                xj = x[j]
+    for bk in range(buckets.shape[0]):
+        n_o, t0, c0, n_b = buckets[bk, 0], buckets[bk, 1], buckets[bk, 2], buckets[bk, 3]
+        x = np.zeros((n_o + 1, width))  # utility differences, shifted; row n_o holds -m
+        ex = np.empty((n_o + 1, width))
+        scratch = np.empty((n_o + 1) * width)
+        for i0 in range(0, n_b, width):
+            w = min(width, n_b - i0)
+            for j in range(n_o):  # x[j, i] = sum_k D[k, cell(j, i)] beta[owner(i), k]
                 for i in range(w):
-                    xj[i] += d[i] * b[i]
-        for i in range(w):
-            m[i] = 0.0
-        for j in range(n_o):
+                    x[j, i] = 0.0
+            own = owner[t0 + i0 : t0 + i0 + w]
+            for k in range(n_k):
+                bt = beta_t[k]
+                for i in range(w):
+                    b[i] = bt[own[i]]
+                for j in range(n_o):
+                    d = D[k, c0 + j * n_b + i0 : c0 + j * n_b + i0 + w]
+                    xj = x[j]
+                    for i in range(w):
+                        xj[i] += d[i] * b[i]
             for i in range(w):
-                m[i] = max(m[i], x[j, i])
-        for j in range(n_o):
-            for i in range(w):
-                x[j, i] -= m[i]
-        for i in range(w):
-            x[n_o, i] = -m[i]
-        _exp_nonpositive(x.reshape(-1), ex.reshape(-1), scratch)
-        for i in range(w):
-            s[i] = ex[n_o, i]  # exp(-m) + sum_j mask_j exp(delta_j - m), in [1, n_o + 1]
-        for j in range(n_o):
-            a = mask[j, i0 : i0 + w]
-            ej = ex[j]
-            for i in range(w):
-                ej[i] *= a[i]
-                s[i] += ej[i]
-        _log_positive(s[:w], log_s[:w], scratch)
-        for i in range(w):
-            total -= m[i] + log_s[i]
-            s[i] = 1.0 / s[i]
-        for j in range(n_o):  # q_j = mask_j exp(delta_j - m) / s
-            for i in range(w):
-                ex[j, i] *= s[i]
-        for k in range(n_k):  # grad[p, k] = -sum over p's tasks and the others of q_j D[k, j]
-            for i in range(w):
-                b[i] = 0.0
+                m[i] = 0.0
             for j in range(n_o):
-                d = D[k, j, i0 : i0 + w]
+                for i in range(w):
+                    m[i] = max(m[i], x[j, i])
+            for j in range(n_o):
+                for i in range(w):
+                    x[j, i] -= m[i]
+            for i in range(w):
+                x[n_o, i] = -m[i]
+            _exp_nonpositive(x.reshape(-1), ex.reshape(-1), scratch)
+            for i in range(w):
+                s[i] = ex[n_o, i]  # exp(-m) + sum_j mask_j exp(delta_j - m), in [1, n_o + 1]
+            for j in range(n_o):
+                a = mask[c0 + j * n_b + i0 : c0 + j * n_b + i0 + w]
                 ej = ex[j]
                 for i in range(w):
-                    b[i] += ej[i] * d[i]
-            for p in range(p0, p1):
+                    ej[i] *= a[i]
+                    s[i] += ej[i]
+            _log_positive(s[:w], log_s[:w], scratch)
+            for i in range(w):
+                total -= m[i] + log_s[i]
+                s[i] = 1.0 / s[i]
+            for j in range(n_o):  # q_j = mask_j exp(delta_j - m) / s
+                for i in range(w):
+                    ex[j, i] *= s[i]
+            for k in range(n_k):  # grad[owner, k] -= sum over the task's others of q_j D[k, j]
+                for i in range(w):
+                    b[i] = 0.0
+                for j in range(n_o):
+                    d = D[k, c0 + j * n_b + i0 : c0 + j * n_b + i0 + w]
+                    ej = ex[j]
+                    for i in range(w):
+                        b[i] += ej[i] * d[i]
+                gt = grad_t[k]  # tasks of a bucket come person by person: add each person's run, then store once
+                cur = own[0]
                 acc = 0.0
-                for i in range((p - p0) * n_t, (p - p0 + 1) * n_t):
+                for i in range(w):
+                    if own[i] != cur:
+                        gt[cur] -= acc
+                        cur = own[i]
+                        acc = 0.0
                     acc += b[i]
-                grad[p, k] = -acc
-    return total, grad
+                gt[cur] -= acc
+    return total, np.ascontiguousarray(grad_t.T)
 
 
-def op_layout(data: DifferenceData) -> tuple[np.ndarray, np.ndarray]:
-    """``D`` and ``mask`` of :class:`~hierchoice.likelihood.DifferenceData` in the Op's other-alternative-major layout.
+class OpData(NamedTuple):
+    """The panel in the Op's bucketed layout (see :func:`loglik_and_grad`); ``cell_task`` serves the JAX twin."""
 
-    Returns ``D`` of shape (n_attributes, n_others, n_persons * n_tasks) and ``mask``
-    of shape (n_others, n_persons * n_tasks), C-contiguous.
+    D: np.ndarray          # (attribute, cell)
+    mask: np.ndarray       # (cell,)
+    cell_task: np.ndarray  # (cell,) the task of each cell
+    owner: np.ndarray      # (task,) the person of each task
+    buckets: np.ndarray    # (bucket, 4) n_others, first task, first cell, tasks
+
+
+def op_layout(data: RaggedDifferences) -> OpData:
+    """The panel's real cells in the Op's layout: tasks grouped by their number of non-chosen alternatives.
+
+    Tasks with no other alternative carry no information (log-likelihood 0) and are left out. Within a bucket
+    tasks keep the panel's order and cells are other-major, so no cell is padded.
     """
-    n_k, n_p, _ = data.D.shape
-    shape = (n_p, data.n_tasks, data.n_others)
-    D = data.D.reshape((n_k,) + shape).transpose(0, 3, 1, 2).reshape(n_k, data.n_others, n_p * data.n_tasks)
-    mask = data.mask.reshape(shape).transpose(2, 0, 1).reshape(data.n_others, n_p * data.n_tasks)
-    return np.ascontiguousarray(D, dtype=float), np.ascontiguousarray(mask, dtype=float)
+    n_c = np.diff(data.task_ptr)
+    owner_all = data.task_owner
+    D_parts, task_parts, owner_parts, rows = [], [], [], []
+    t_next = c_next = 0
+    for n_o in np.unique(n_c[n_c > 0]):
+        tasks = np.flatnonzero(n_c == n_o)
+        cells = data.task_ptr[tasks][None, :] + np.arange(n_o)[:, None]  # (other, task): other-major
+        D_parts.append(data.D[cells.reshape(-1)].T)
+        task_parts.append(np.tile(np.arange(t_next, t_next + tasks.size), n_o))
+        owner_parts.append(owner_all[tasks])
+        rows.append((n_o, t_next, c_next, tasks.size))
+        t_next += tasks.size
+        c_next += tasks.size * n_o
+    n_k = data.n_attributes
+    D = np.ascontiguousarray(np.concatenate(D_parts, axis=1) if D_parts else np.zeros((n_k, 0)), dtype=float)
+    cat = (lambda parts: np.concatenate(parts).astype(np.int64) if parts else np.zeros(0, dtype=np.int64))
+    return OpData(D=D, mask=np.ones(D.shape[1]), cell_task=cat(task_parts), owner=cat(owner_parts),
+                  buckets=np.array(rows, dtype=np.int64).reshape(-1, 4))
+
+
+def padded_by_person(data: RaggedDifferences) -> tuple[np.ndarray, np.ndarray, int, int]:
+    """Every person padded to the same tasks and others, for views that pick whole persons (minibatches).
+
+    Returns ``D`` (person, attribute, other, task), ``mask`` (person, other, task) and the two widths; a
+    minibatch of persons ``idx`` is then one bucket of :func:`loglik_and_grad` (see :func:`batch_layout`).
+    """
+    n_p, n_k = data.n_persons, data.n_attributes
+    n_t = int(np.diff(data.person_ptr).max(initial=0))
+    n_o = max(data.max_others, 1)
+    owner = data.task_owner
+    t_in = np.arange(data.n_tasks) - data.person_ptr[owner]
+    cell_task = data.cell_task
+    j_in = np.arange(data.n_cells) - data.task_ptr[cell_task]
+    D = np.zeros((n_p, n_k, n_o, n_t))
+    mask = np.zeros((n_p, n_o, n_t))
+    D[owner[cell_task], :, j_in, t_in[cell_task]] = data.D
+    mask[owner[cell_task], j_in, t_in[cell_task]] = 1.0
+    return D, mask, n_o, n_t
+
+
+def batch_layout(n_batch: int, n_o: int, n_t: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``cell_task``, ``owner`` and ``buckets`` of a minibatch of ``n_batch`` persons from :func:`padded_by_person`.
+
+    The batch's ``D[idx]`` (batch, attribute, other, task) transposed to (attribute, other, batch, task) and
+    flattened is one bucket with ``n_o`` others of ``n_batch * n_t`` tasks.
+    """
+    n_tasks = n_batch * n_t
+    cell_task = np.tile(np.arange(n_tasks, dtype=np.int64), n_o)
+    owner = np.repeat(np.arange(n_batch, dtype=np.int64), n_t)
+    return cell_task, owner, np.array([[n_o, 0, 0, n_tasks]], dtype=np.int64)
 
 
 class PanelLogitLoglik(Op):
-    """``(loglik, dloglik/dbeta) = op(beta, D, mask)`` for the difference-form panel logit.
+    """``(loglik, dloglik/dbeta) = op(beta, D, mask, cell_task, owner, buckets)`` for the difference-form panel logit.
 
-    Inputs: ``beta`` (person, attribute) tastes on the model's internal scale, and
-    ``D`` (attribute, other, person * task) and ``mask`` (other, person * task) from
-    :func:`op_layout`. Outputs: the scalar total log-likelihood and its gradient
-    with respect to ``beta``. Only the first output is differentiable; its gradient
-    is the second output, so a value-and-gradient function computes both in the
-    same pass.
+    Inputs: ``beta`` (person, attribute) tastes on the model's internal scale, and the data of
+    :class:`OpData` (:func:`op_layout`). Outputs: the scalar total log-likelihood and its gradient with respect
+    to ``beta``. Only the first output is differentiable; its gradient is the second output, so a
+    value-and-gradient function computes both in the same pass.
     """
 
     __props__ = ()
 
-    def make_node(self, beta, D, mask):  # type: ignore[no-untyped-def]
-        beta = pt.as_tensor_variable(beta)
-        D = pt.as_tensor_variable(D)
-        mask = pt.as_tensor_variable(mask)
-        if (beta.ndim, D.ndim, mask.ndim) != (2, 3, 2):
-            raise TypeError(f"PanelLogitLoglik needs beta (2-d), D (3-d) and mask (2-d); got "
-                            f"{beta.ndim}, {D.ndim}, {mask.ndim} dimensions.")
+    def make_node(self, beta, D, mask, cell_task, owner, buckets):  # type: ignore[no-untyped-def]
+        beta, D, mask, cell_task, owner, buckets = (pt.as_tensor_variable(v)
+                                                    for v in (beta, D, mask, cell_task, owner, buckets))
+        dims = tuple(v.ndim for v in (beta, D, mask, cell_task, owner, buckets))
+        if dims != (2, 2, 1, 1, 1, 2):
+            raise TypeError(f"PanelLogitLoglik needs beta, D (2-d), mask, cell_task, owner (1-d) and buckets (2-d); "
+                            f"got {dims} dimensions.")
         if any(v.type.dtype != "float64" for v in (beta, D, mask)):
             raise TypeError("PanelLogitLoglik works in float64 only.")
-        return Apply(self, [beta, D, mask], [pt.dscalar(), beta.type()])
+        if any(v.type.dtype != "int64" for v in (cell_task, owner, buckets)):
+            raise TypeError("PanelLogitLoglik needs int64 cell_task, owner and buckets.")
+        return Apply(self, [beta, D, mask, cell_task, owner, buckets], [pt.dscalar(), beta.type()])
 
     def perform(self, node, inputs, output_storage):  # type: ignore[no-untyped-def]
-        beta, D, mask = inputs
-        total, grad = loglik_and_grad(D, mask, np.ascontiguousarray(beta))
+        beta, D, mask, _, owner, buckets = inputs
+        total, grad = loglik_and_grad(D, mask, owner, buckets, np.ascontiguousarray(beta))
         output_storage[0][0] = np.asarray(total)
         output_storage[1][0] = grad
 
@@ -285,25 +353,24 @@ class PanelLogitLoglik(Op):
         return [(), shapes[0]]
 
     def L_op(self, inputs, outputs, output_grads):  # type: ignore[no-untyped-def]
-        beta, D, mask = inputs
+        beta = inputs[0]
         g_total, g_grad = output_grads
         if not isinstance(g_grad.type, DisconnectedType):
             g_beta = grad_not_implemented(self, 0, beta, "second derivatives of the panel logit are not implemented")
         else:
             g_beta = g_total * outputs[1]
-        return [g_beta, grad_undefined(self, 1, D, "D is data"), grad_undefined(self, 2, mask, "mask is data")]
+        return [g_beta] + [grad_undefined(self, i, v, "data") for i, v in enumerate(inputs) if i > 0]
 
 
 _OP = PanelLogitLoglik()
 
 
-def panel_logit_loglik(beta, D, mask):  # type: ignore[no-untyped-def]
+def panel_logit_loglik(beta, D, mask, cell_task, owner, buckets):  # type: ignore[no-untyped-def]
     """Total panel logit log-likelihood of ``beta`` (person, attribute) as a scalar tensor.
 
-    ``D`` and ``mask`` are in the layout of :func:`op_layout` (arrays, constants or
-    shared variables).
+    The data are those of :class:`OpData` (:func:`op_layout`), as arrays, constants or shared variables.
     """
-    return _OP(beta, D, mask)[0]
+    return _OP(beta, D, mask, cell_task, owner, buckets)[0]
 
 
 # ----------------------------------------------------------------- backends
@@ -329,8 +396,8 @@ def _register_numba() -> None:
         kernel = loglik_and_grad
 
         @nb_basic.numba_njit
-        def panel_logit(beta, D, mask):  # type: ignore[no-untyped-def]
-            total, grad = kernel(D, mask, np.ascontiguousarray(beta))
+        def panel_logit(beta, D, mask, cell_task, owner, buckets):  # type: ignore[no-untyped-def]
+            total, grad = kernel(D, mask, owner, buckets, np.ascontiguousarray(beta))
             return np.asarray(total), grad
 
         return panel_logit
@@ -346,20 +413,20 @@ def _register_numba() -> None:
 _register_numba()
 
 
-def jax_loglik_and_grad(beta, D, mask):  # type: ignore[no-untyped-def]
-    """:func:`loglik_and_grad` in ``jax.numpy`` (vectorised; same stable formula and layout)."""
+def jax_loglik_and_grad(beta, D, mask, cell_task, owner, buckets):  # type: ignore[no-untyped-def]
+    """:func:`loglik_and_grad` in ``jax.numpy`` (segment sums over cells; same stable formula and layout)."""
+    import jax
     import jax.numpy as jnp
 
-    n_p = beta.shape[0]
-    n_t = D.shape[2] // n_p
-    b = jnp.repeat(beta, n_t, axis=0)  # (person * task, attribute)
-    delta = jnp.einsum("kji,ik->ji", D, b)
-    m = jnp.maximum(jnp.max(delta, axis=0), 0.0)
-    ex = jnp.exp(delta - m) * mask
-    s = jnp.exp(-m) + jnp.sum(ex, axis=0)
+    n_t = owner.shape[0]
+    person = owner[cell_task]
+    delta = jnp.sum(D * beta[person].T, axis=0)  # (cell,)
+    m = jnp.maximum(jax.ops.segment_max(delta, cell_task, num_segments=n_t), 0.0)
+    ex = jnp.exp(delta - m[cell_task]) * mask
+    s = jnp.exp(-m) + jax.ops.segment_sum(ex, cell_task, num_segments=n_t)
     total = -jnp.sum(m + jnp.log(s))
-    q = ex / s
-    grad = -jnp.einsum("kji,ji->ik", D, q).reshape(n_p, n_t, -1).sum(axis=1)
+    q = ex / s[cell_task]
+    grad = -jax.ops.segment_sum((D * q).T, person, num_segments=beta.shape[0])
     return total, grad
 
 

@@ -1,8 +1,8 @@
 r"""Numba kernels of the blocked sampler: per-person panel logit log-likelihoods and a per-person MALA pass.
 
-The data are the difference-form arrays of :func:`hierchoice.model.likelihood.difference_data`
-laid out person-major, ``Dp[n, i, k]`` with row ``i = t * n_others + j`` (task ``t``,
-non-chosen alternative ``j``), and ``maskp[n, i]``. For person :math:`n` with tastes
+The data are the real cells of :class:`hierchoice.model.likelihood.RaggedDifferences`: ``D[c, k]`` for cell ``c``
+(a task's non-chosen available alternative), the cells of task ``t`` at ``task_ptr[t]:task_ptr[t + 1]`` and the
+tasks of person ``n`` at ``person_ptr[n]:person_ptr[n + 1]``, so nothing is padded. For person :math:`n` with tastes
 :math:`\beta_n`
 
 .. math::
@@ -25,24 +25,18 @@ import math
 import numba
 import numpy as np
 
+from ...model.likelihood import RaggedDifferences
+
 #: Persons are processed in this many chunks (each thread takes whole chunks; scratch arrays once per chunk).
 CHUNKS = 64
 
-__all__ = ["mala_persons", "person_information", "person_loglik", "person_loglik_grad", "person_loglik_grad_info", "person_major"]
-
-
-def person_major(D: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``Dp`` (person, row, attribute) and ``maskp`` (person, row) from :class:`~hierchoice.likelihood.DifferenceData`.
-
-    ``D`` is (attribute, person, row) and ``mask`` (person, row), as ``difference_data`` returns them.
-    """
-    return np.ascontiguousarray(np.transpose(D, (1, 2, 0)), dtype=float), np.ascontiguousarray(mask, dtype=float)
+__all__ = ["mala_persons", "person_information", "person_loglik", "person_loglik_grad", "person_loglik_grad_info"]
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
-def _task_weights(Dn, an, r0, n_o, beta, delta):  # type: ignore[no-untyped-def]
-    r"""One task (rows ``r0 .. r0 + n_o``): fill ``delta`` with the non-chosen alternatives' weights
-    :math:`a_{ntj} e^{\Delta_{ntj} - m}` and return ``(m, s)``, so the task's log-likelihood is
+def _task_weights(Dn, r0, n_o, beta, delta):  # type: ignore[no-untyped-def]
+    r"""One task (cells ``r0 .. r0 + n_o``): fill ``delta`` with the non-chosen alternatives' weights
+    :math:`e^{\Delta_{ntj} - m}` and return ``(m, s)``, so the task's log-likelihood is
     :math:`-(m + \log s)` and the probability of alternative ``j`` is ``delta[j] / s``."""
     m = 0.0
     for j in range(n_o):
@@ -53,64 +47,66 @@ def _task_weights(Dn, an, r0, n_o, beta, delta):  # type: ignore[no-untyped-def]
         m = max(m, d)
     s = 1.0 if m == 0.0 else math.exp(-m)
     for j in range(n_o):
-        e = an[r0 + j] * math.exp(delta[j] - m)
+        e = math.exp(delta[j] - m)
         delta[j] = e
         s += e
     return m, s
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _eval_person(Dn, an, n_o, beta, g, delta):  # type: ignore[no-untyped-def]
-    """Log-likelihood of one person (rows ``Dn`` (row, attribute), mask ``an``) and its gradient into ``g``."""
-    n_rows, n_k = Dn.shape
+def _eval_person(D, tptr, t0, t1, beta, g, delta):  # type: ignore[no-untyped-def]
+    """Log-likelihood of one person (tasks ``t0 .. t1``) and its gradient into ``g``."""
+    n_k = D.shape[1]
     for k in range(n_k):
         g[k] = 0.0
     ll = 0.0
-    for r0 in range(0, n_rows, n_o):
-        m, s = _task_weights(Dn, an, r0, n_o, beta, delta)
+    for t in range(t0, t1):
+        r0 = tptr[t]
+        n_o = tptr[t + 1] - r0
+        m, s = _task_weights(D, r0, n_o, beta, delta)
         ll -= m + math.log(s)
         inv = 1.0 / s
         for j in range(n_o):
             q = delta[j] * inv
             if q != 0.0:
                 for k in range(n_k):
-                    g[k] -= q * Dn[r0 + j, k]
+                    g[k] -= q * D[r0 + j, k]
     return ll
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _eval_person_value(Dn, an, n_o, beta, delta):  # type: ignore[no-untyped-def]
+def _eval_person_value(D, tptr, t0, t1, beta, delta):  # type: ignore[no-untyped-def]
     """Log-likelihood of one person, without the gradient."""
-    n_rows, n_k = Dn.shape
     ll = 0.0
-    for r0 in range(0, n_rows, n_o):
-        m, s = _task_weights(Dn, an, r0, n_o, beta, delta)
+    for t in range(t0, t1):
+        r0 = tptr[t]
+        m, s = _task_weights(D, r0, tptr[t + 1] - r0, beta, delta)
         ll -= m + math.log(s)
     return ll
 
 
-def _person_loglik(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-def]
+def _person_loglik(D, tptr, pptr, n_o, beta):  # type: ignore[no-untyped-def]
     """Per-person log-likelihoods, shape (person,), of tastes ``beta`` (person, attribute)."""
-    n_p = Dp.shape[0]
+    n_p = pptr.size - 1
     out = np.empty(n_p)
     n_chunks = min(n_p, CHUNKS)
     for c in numba.prange(n_chunks):
         delta = np.empty(n_o)
         for n in range(c * n_p // n_chunks, (c + 1) * n_p // n_chunks):
-            out[n] = _eval_person_value(Dp[n], maskp[n], n_o, beta[n], delta)
+            out[n] = _eval_person_value(D, tptr, pptr[n], pptr[n + 1], beta[n], delta)
     return out
 
 
-def _person_loglik_grad(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-def]
+def _person_loglik_grad(D, tptr, pptr, n_o, beta):  # type: ignore[no-untyped-def]
     """Per-person log-likelihoods (person,) and their gradients (person, attribute) w.r.t. ``beta``."""
-    n_p, _, n_k = Dp.shape
+    n_p, n_k = pptr.size - 1, D.shape[1]
     out = np.empty(n_p)
     grad = np.empty((n_p, n_k))
     n_chunks = min(n_p, CHUNKS)
     for c in numba.prange(n_chunks):
         delta = np.empty(n_o)
         for n in range(c * n_p // n_chunks, (c + 1) * n_p // n_chunks):
-            out[n] = _eval_person(Dp[n], maskp[n], n_o, beta[n], grad[n], delta)
+            out[n] = _eval_person(D, tptr, pptr[n], pptr[n + 1], beta[n], grad[n], delta)
     return out, grad
 
 
@@ -121,7 +117,7 @@ def _fill_beta(beta, eta_n, rnd, logn, sign):  # type: ignore[no-untyped-def]
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _lik_eta(Dn, an, n_o, beta, eta_n, rnd, logn, sign, g, delta, glik):  # type: ignore[no-untyped-def]
+def _lik_eta(D, tptr, t0, t1, beta, eta_n, rnd, logn, sign, g, delta, glik):  # type: ignore[no-untyped-def]
     r"""Person log-likelihood at latent tastes ``eta_n`` and its gradient in eta (into ``glik``).
 
     :math:`\beta_k = s_k e^{\eta_k}` (lognormal) or :math:`\eta_k` (normal) on the random columns, so
@@ -129,7 +125,7 @@ def _lik_eta(Dn, an, n_o, beta, eta_n, rnd, logn, sign, g, delta, glik):  # type
     :math:`\partial\ell/\partial\beta_k`.
     """
     _fill_beta(beta, eta_n, rnd, logn, sign)
-    ll = _eval_person(Dn, an, n_o, beta, g, delta)
+    ll = _eval_person(D, tptr, t0, t1, beta, g, delta)
     for a in range(rnd.size):
         glik[a] = g[rnd[a]] * (beta[rnd[a]] if logn[a] else 1.0)
     return ll
@@ -158,7 +154,7 @@ def _prior_eta(eta_n, m_n, L, y, grad, glik):  # type: ignore[no-untyped-def]
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _log_target(Dn, an, n_o, beta, eta_n, m_n, L, rnd, logn, sign, g, delta, y, grad):  # type: ignore[no-untyped-def]
+def _log_target(D, tptr, t0, t1, beta, eta_n, m_n, L, rnd, logn, sign, g, delta, y, grad):  # type: ignore[no-untyped-def]
     r"""Log conditional density of one person's latent tastes and its gradient (into ``grad``).
 
     .. math:: \log\pi(\eta) = -\tfrac12 \lVert L^{-1}(\eta - m)\rVert^2 + \ell_n(\beta(\eta)), \qquad
@@ -168,7 +164,7 @@ def _log_target(Dn, an, n_o, beta, eta_n, m_n, L, rnd, logn, sign, g, delta, y, 
     normal columns). Returns ``(log pi, loglik)``.
     """
     glik = np.empty(rnd.size)
-    ll = _lik_eta(Dn, an, n_o, beta, eta_n, rnd, logn, sign, g, delta, glik)
+    ll = _lik_eta(D, tptr, t0, t1, beta, eta_n, rnd, logn, sign, g, delta, glik)
     return ll + _prior_eta(eta_n, m_n, L, y, grad, glik), ll
 
 
@@ -204,7 +200,7 @@ def _log_q(to, mean, R, h):  # type: ignore[no-untyped-def]
     return -0.5 * quad / (h * h)
 
 
-def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, xi, log_u, use_cache, cache_ll,
+def _mala_persons(D, tptr, pptr, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, xi, log_u, use_cache, cache_ll,
                   cache_g, accept, loglik, glik_out):  # type: ignore[no-untyped-def]
     r"""Preconditioned MALA steps on every person's latent tastes, in place; parallel over persons.
 
@@ -223,7 +219,7 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
 
     Parameters
     ----------
-    Dp, maskp, n_o : person-major data (:func:`person_major`) and the number of non-chosen alternatives
+    D, tptr, pptr, n_o : the cells, task and person pointers, and the most non-chosen alternatives of a task
     beta_fixed : (person, attribute) coefficients of the fixed columns (random columns are overwritten)
     eta : (person, random) latent tastes, updated in place
     m : (person, random) their population means
@@ -238,7 +234,7 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
     loglik, glik_out : (person,) and (person, random) outputs, the log-likelihood and its eta-gradient at the
         final state (the next pass's cache)
     """
-    n_p, _, n_k = Dp.shape
+    n_p, n_k = pptr.size - 1, D.shape[1]
     n_r = rnd.size
     n_steps = xi.shape[0]
     n_chunks = min(n_p, CHUNKS)
@@ -266,7 +262,7 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
                 for a in range(n_r):
                     glik[a] = cache_g[n, a]
             else:
-                ll = _lik_eta(Dp[n], maskp[n], n_o, beta, cur, rnd, logn, sign, g, delta, glik)
+                ll = _lik_eta(D, tptr, pptr[n], pptr[n + 1], beta, cur, rnd, logn, sign, g, delta, glik)
             lp = ll + _prior_eta(cur, m[n], L, y, grad, glik)
             hn = h[n]
             acc_sum = 0.0
@@ -279,7 +275,7 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
                     y[a] = acc / Rn[a, a]
                 for a in range(n_r):
                     prop[a] = mean_f[a] + hn * y[a]
-                ll_p = _lik_eta(Dp[n], maskp[n], n_o, beta, prop, rnd, logn, sign, g, delta, glik_p)
+                ll_p = _lik_eta(D, tptr, pptr[n], pptr[n + 1], beta, prop, rnd, logn, sign, g, delta, glik_p)
                 lp_p = ll_p + _prior_eta(prop, m[n], L, y, grad_p, glik_p)
                 _drift(prop, Rn, grad_p, hn, mean_b)
                 log_a = lp_p - lp + _log_q(cur, mean_b, Rn, hn) - _log_q(prop, mean_f, Rn, hn)
@@ -300,7 +296,7 @@ def _mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, 
                 glik_out[n, a] = glik[a]
 
 
-def _person_loglik_grad_info(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-def]
+def _person_loglik_grad_info(D, tptr, pptr, n_o, beta):  # type: ignore[no-untyped-def]
     r"""Per-person log-likelihoods (person,), gradients (person, attribute) and Fisher information.
 
     The information, shape (person, attribute, attribute), is
@@ -311,30 +307,30 @@ def _person_loglik_grad_info(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-d
     the covariance of the attribute differences under the choice probabilities: the
     negative Hessian of the logit log-likelihood (Train 2009, ch. 3.7, in differences).
     """
-    n_p, n_rows, n_k = Dp.shape
+    n_p, n_k = pptr.size - 1, D.shape[1]
     ll = np.empty(n_p)
     grad = np.zeros((n_p, n_k))
     out = np.zeros((n_p, n_k, n_k))
     for n in numba.prange(n_p):
-        Dn = Dp[n]
-        an = maskp[n]
         b = beta[n]
         delta = np.empty(n_o)
         gt = np.empty(n_k)
         F = out[n]
         total = 0.0
-        for r0 in range(0, n_rows, n_o):
-            mx, s = _task_weights(Dn, an, r0, n_o, b, delta)
+        for t in range(pptr[n], pptr[n + 1]):
+            r0 = tptr[t]
+            n_ot = tptr[t + 1] - r0
+            mx, s = _task_weights(D, r0, n_ot, b, delta)
             total -= mx + math.log(s)
             for k in range(n_k):
                 gt[k] = 0.0
-            for j in range(n_o):
+            for j in range(n_ot):
                 q = delta[j] / s
                 if q != 0.0:
                     for k in range(n_k):
-                        gt[k] += q * Dn[r0 + j, k]
+                        gt[k] += q * D[r0 + j, k]
                         for l in range(k + 1):
-                            F[k, l] += q * Dn[r0 + j, k] * Dn[r0 + j, l]
+                            F[k, l] += q * D[r0 + j, k] * D[r0 + j, l]
             for k in range(n_k):
                 grad[n, k] -= gt[k]
                 for l in range(k + 1):
@@ -345,8 +341,8 @@ def _person_loglik_grad_info(Dp, maskp, n_o, beta):  # type: ignore[no-untyped-d
                 F[l, k] = F[k, l]
     return ll, grad, out
 
-#: Below this many (person, task, other) rows the kernels run on one thread: launching threads costs more than
-#: it saves on small panels, and far more on a machine whose cores are busy.
+#: Below this many real (task, other alternative) cells the kernels run on one thread: launching threads costs more
+#: than it saves on small panels, and far more on a machine whose cores are busy.
 PARALLEL_MIN_ROWS = 50_000
 
 
@@ -362,33 +358,36 @@ _MALA = _compiled(_mala_persons)
 _ALL = _compiled(_person_loglik_grad_info)
 
 
-def _pick(pair, Dp):  # type: ignore[no-untyped-def]
-    return pair[0] if Dp.shape[0] * Dp.shape[1] >= PARALLEL_MIN_ROWS else pair[1]
+def _args(data: RaggedDifferences) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
+    return data.D, data.task_ptr, data.person_ptr, max(data.max_others, 1)
 
 
-def person_loglik(Dp: np.ndarray, maskp: np.ndarray, n_o: int, beta: np.ndarray) -> np.ndarray:
+def _pick(pair, data: RaggedDifferences):  # type: ignore[no-untyped-def]
+    return pair[0] if data.n_cells >= PARALLEL_MIN_ROWS else pair[1]
+
+
+def person_loglik(data: RaggedDifferences, beta: np.ndarray) -> np.ndarray:
     """Per-person log-likelihoods, shape (person,), of tastes ``beta`` (person, attribute)."""
-    return _pick(_LOGLIK, Dp)(Dp, maskp, n_o, np.ascontiguousarray(beta))
+    return _pick(_LOGLIK, data)(*_args(data), np.ascontiguousarray(beta))
 
 
-def person_loglik_grad(Dp: np.ndarray, maskp: np.ndarray, n_o: int, beta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def person_loglik_grad(data: RaggedDifferences, beta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Per-person log-likelihoods (person,) and their gradients (person, attribute) w.r.t. ``beta``."""
-    return _pick(_LOGLIK_GRAD, Dp)(Dp, maskp, n_o, np.ascontiguousarray(beta))
+    return _pick(_LOGLIK_GRAD, data)(*_args(data), np.ascontiguousarray(beta))
 
 
-def mala_persons(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, xi, log_u, use_cache, cache_ll,  # type: ignore[no-untyped-def]
-                 cache_g, accept, loglik, glik_out):
+def mala_persons(data: RaggedDifferences, beta_fixed, eta, m, L, R, rnd, logn, sign, h, xi, log_u,  # type: ignore[no-untyped-def]
+                 use_cache, cache_ll, cache_g, accept, loglik, glik_out):
     """Preconditioned MALA steps on every person's latent tastes, in place (see :func:`_mala_persons`)."""
-    _pick(_MALA, Dp)(Dp, maskp, n_o, beta_fixed, eta, m, L, R, rnd, logn, sign, h, xi, log_u, use_cache, cache_ll,
-                     cache_g, accept, loglik, glik_out)
+    _pick(_MALA, data)(*_args(data), beta_fixed, eta, m, L, R, rnd, logn, sign, h, xi, log_u, use_cache, cache_ll,
+                       cache_g, accept, loglik, glik_out)
 
 
-def person_loglik_grad_info(Dp: np.ndarray, maskp: np.ndarray, n_o: int,
-                            beta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def person_loglik_grad_info(data: RaggedDifferences, beta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-person log-likelihoods, gradients and logit information (see :func:`_person_loglik_grad_info`)."""
-    return _pick(_ALL, Dp)(Dp, maskp, n_o, np.ascontiguousarray(beta))
+    return _pick(_ALL, data)(*_args(data), np.ascontiguousarray(beta))
 
 
-def person_information(Dp: np.ndarray, maskp: np.ndarray, n_o: int, beta: np.ndarray) -> np.ndarray:
+def person_information(data: RaggedDifferences, beta: np.ndarray) -> np.ndarray:
     """Per-person logit Fisher information (person, attribute, attribute)."""
-    return person_loglik_grad_info(Dp, maskp, n_o, beta)[2]
+    return person_loglik_grad_info(data, beta)[2]

@@ -12,13 +12,9 @@ import numpy as np
 from ...data.panel import ChoicePanel
 from ...exceptions import SpecError
 from ...model.build import PRIOR_SD, ModelLayout, model_layout
-from ...model.likelihood import difference_data
+from ...model.likelihood import RaggedDifferences, cell_differences
 from ...spec import Spec
-from .kernels import (
-    person_information,
-    person_loglik,
-    person_major,
-)
+from .kernels import person_information, person_loglik
 
 #: ``info["method"]`` of a blocked fit.
 METHOD_NAME = "blocked Gibbs (MALA persons)"
@@ -31,9 +27,7 @@ class BlockedProblem:
     """Everything that stays fixed across sweeps: the data in the kernels' layout, the priors, the layout."""
 
     layout: ModelLayout
-    Dp: np.ndarray            # (person, task * other, attribute)
-    maskp: np.ndarray         # (person, task * other)
-    n_others: int
+    data: RaggedDifferences   # the real (task, other alternative) cells, person after person
     Z: np.ndarray             # (person, covariate), standardised as in the model
     rnd: np.ndarray           # (random,) attribute index of each random taste
     fixed: np.ndarray         # (fixed,) attribute index of each fixed taste
@@ -51,11 +45,11 @@ class BlockedProblem:
 
     @property
     def n_persons(self) -> int:
-        return int(self.Dp.shape[0])
+        return self.data.n_persons
 
     @property
     def n_attributes(self) -> int:
-        return int(self.Dp.shape[2])
+        return self.data.n_attributes
 
     @property
     def n_random(self) -> int:
@@ -116,8 +110,7 @@ def blocked_problem(panel: ChoicePanel, spec: Spec) -> BlockedProblem:
     panel = panel.with_spec(spec)
     layout = model_layout(panel, spec)
     _refuse(layout, spec)
-    data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen, scale=layout.scale)
-    Dp, maskp = person_major(data.D, data.mask)
+    data = cell_differences(panel.cells, scale=layout.scale)
     n_k = len(layout.terms)
     rnd = np.array(layout.random, dtype=np.int64)
     ps = spec.model.prior_scale
@@ -130,7 +123,7 @@ def blocked_problem(panel: ChoicePanel, spec: Spec) -> BlockedProblem:
     lin = ~lognormal
     linear_map = centre is None or not np.any(centre[:, lognormal])
     return BlockedProblem(
-        layout=layout, Dp=Dp, maskp=maskp, n_others=data.n_others, Z=Z, rnd=rnd,
+        layout=layout, data=data, Z=Z, rnd=rnd,
         fixed=np.array(layout.fixed, dtype=np.int64), shifted=np.array(layout.shifted, dtype=np.int64),
         logn=lognormal[rnd], sign=np.array([layout.sign(k) for k in layout.random]),
         mean_sd=np.where(lognormal, PRIOR_SD["log_mean"], PRIOR_SD["mean"]) * ps,
@@ -249,7 +242,7 @@ def log_density(prob: BlockedProblem, state: BlockedState) -> float:
     theta = locations(prob, state.mu_free, state.gamma)
     resid = state.eta - theta[:, prob.rnd]
     beta = person_betas(prob, state)
-    ll = float(person_loglik(prob.Dp, prob.maskp, prob.n_others, beta).sum())
+    ll = float(person_loglik(prob.data, beta).sum())
     return (_location_log_prior(prob, state.mu_free, state.gamma) + _cov_log_prior(prob, state.L)
             + _eta_log_density(state.L, resid) + ll)
 
@@ -264,7 +257,7 @@ def _person_information_eta(prob: BlockedProblem, state: BlockedState) -> np.nda
     the curvature of :math:`s e^{\eta}` itself is left out: this is only a preconditioner.
     """
     beta = person_betas(prob, state)
-    F = person_information(prob.Dp, prob.maskp, prob.n_others, beta)[:, prob.rnd][:, :, prob.rnd]
+    F = person_information(prob.data, beta)[:, prob.rnd][:, :, prob.rnd]
     J = np.where(prob.logn[None, :], beta[:, prob.rnd], 1.0)
     return F * J[:, :, None] * J[:, None, :]
 

@@ -33,7 +33,7 @@ CHUNK = 2048
 
 def restrict(prob: BlockedProblem, start: int, stop: int) -> BlockedProblem:
     """``prob`` with the data of persons ``start .. stop - 1`` only (the population fields unchanged)."""
-    return replace(prob, Dp=prob.Dp[start:stop], maskp=prob.maskp[start:stop], Z=prob.Z[start:stop])
+    return replace(prob, data=prob.data.persons(slice(start, stop)), Z=prob.Z[start:stop])
 
 
 def shard_bounds(n_persons: int, shards: int, chunk: int = CHUNK) -> list[tuple[int, int]]:
@@ -189,7 +189,7 @@ def update_persons(prob: BlockedProblem, state: BlockedState, xi: np.ndarray, lo
     loglik = np.empty(prob.n_persons)
     glik = np.empty((prob.n_persons, prob.n_random))
     cache_ll, cache_g = state.cache if state.cache is not None else (loglik, glik)
-    mala_persons(prob.Dp, prob.maskp, prob.n_others, beta_fixed, state.eta, m, L, R, prob.rnd, prob.logn, prob.sign,
+    mala_persons(prob.data, beta_fixed, state.eta, m, L, R, prob.rnd, prob.logn, prob.sign,
                  state.h, np.ascontiguousarray(xi), np.ascontiguousarray(log_u), state.cache is not None, cache_ll,
                  cache_g, accept, loglik, glik)
     state.cache = (loglik, glik)
@@ -217,7 +217,7 @@ def location_parts(prob: BlockedProblem, state: BlockedState, mu_free: np.ndarra
     if prob.fixed.size:
         beta = theta.copy()
         beta[:, prob.rnd] = np.where(prob.logn, prob.sign * np.exp(np.where(prob.logn, state.eta, 0.0)), state.eta)
-        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
+        ll, g = person_loglik_grad(prob.data, beta)
         D[:, prob.fixed] = g[:, prob.fixed]
     return np.sum(y * y, axis=0), ll, D, D[:, prob.shifted]
 
@@ -245,7 +245,7 @@ def asis_parts(prob: BlockedProblem, gamma: np.ndarray, e: np.ndarray, L: np.nda
     J[:, prob.rnd] = np.where(prob.logn, beta[:, prob.rnd], 1.0)
     Ft = None
     if metric:
-        ll, g, F = person_loglik_grad_info(prob.Dp, prob.maskp, prob.n_others, beta)
+        ll, g, F = person_loglik_grad_info(prob.data, beta)
         gt = g * J
         Ft = F * J[:, :, None] * J[:, None, :]
     elif cached is not None:
@@ -253,7 +253,7 @@ def asis_parts(prob: BlockedProblem, gamma: np.ndarray, e: np.ndarray, L: np.nda
         gt = np.zeros((n, K))
         gt[:, prob.rnd] = cached[1]
     else:
-        ll, g = person_loglik_grad(prob.Dp, prob.maskp, prob.n_others, beta)
+        ll, g = person_loglik_grad(prob.data, beta)
         gt = g * J
     gr = np.ascontiguousarray(gt[:, prob.rnd])
     parts: list[Callable[[slice], np.ndarray]] = [
