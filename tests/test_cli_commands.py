@@ -25,6 +25,7 @@ import pandas as pd
 import pytest
 
 import hierchoice as hc
+from hierchoice._io import MARKER
 from hierchoice._version import __version__
 from hierchoice.cli import EXIT_BAD_INPUT, main
 
@@ -260,6 +261,11 @@ def test_fit_approximate_with_person_batch(short: dict[str, Any]) -> None:
     mean = result.posterior["taste_mean"].mean(("chain", "draw")).values
     sd = result.posterior["taste_mean"].std(("chain", "draw")).values
     assert (np.abs(mean - np.array([1.0, -0.5])) <= 8 * sd).all(), (mean, sd)
+    # check: an approximate fit never passes (the exact_method check fails), and the exit code says so
+    code, out, _ = _run(["check", str(folder)])
+    report = json.loads((folder / "diagnostics.json").read_text(encoding="utf-8"))
+    assert code == report["exit_code"] == 1
+    assert any(c["check"] == "exact_method" and c["verdict"] == "fail" for c in report["checks"])
     # --method advi is the same as --approximate
     code, _, _ = _run(["fit", str(short["data"]), "--spec", str(short["spec"]), "--out", str(folder),
                        "--method", "advi", "--person-batch", "20", "--draws", "200", "--seed", "1", "--quiet"])
@@ -293,5 +299,5 @@ def test_demo_quick(tmp_path: Path) -> None:
     assert report["exit_code"] == (1 if "FAILED" in out else 0)
     result = hc.load_fit(out_dir / "results")
     assert (result.posterior.sizes["draw"], result.info["tune"]) == (60, 60)
-    assert sorted(p.name for p in out_dir.iterdir() if p.suffix) == [
-        "harbourline.csv", "harbourline.toml", "harbourline_market.csv"]
+    assert sorted(p.name for p in out_dir.iterdir()) == sorted(
+        [MARKER, "harbourline.csv", "harbourline.toml", "harbourline_market.csv", "results"])
