@@ -615,3 +615,17 @@ def test_auto_picks_nuts_for_small_panels_and_blocked_for_large_ones(monkeypatch
     assert sampling.choose_method(panel, fixed_only) == "nuts"  # nothing random: the blocked sampler does not apply
     result = hc.fit(panel, draws=30, tune=30, chains=1, seed=2, progressbar=False)
     assert result.info["backend"] == "blocked" and result.spec.sampling.method == "blocked"
+
+
+def test_triangular_solve_equals_lapack() -> None:
+    """The compiled substitution the population blocks use against scipy's LAPACK ``solve_triangular``."""
+    from scipy.linalg import solve_triangular
+
+    from hierchoice.inference.blocked.problem import _solve_lower
+
+    rng = np.random.default_rng(11)
+    L = np.linalg.cholesky(np.cov(rng.normal(size=(5, 40))))
+    for B in (np.eye(5), rng.normal(size=(5, 1)), rng.normal(size=(5, 3000)), rng.normal(size=5)):
+        for trans in (0, 1):
+            np.testing.assert_allclose(_solve_lower(L, B, trans=trans), solve_triangular(L, B, lower=True, trans=trans),
+                                       rtol=1e-12, atol=1e-12)

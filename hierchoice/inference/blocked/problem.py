@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+import numba
 import numpy as np
 
 from ...data.panel import ChoicePanel
@@ -226,10 +227,37 @@ def _eta_log_density(L: np.ndarray, resid: np.ndarray) -> float:
 
 
 def _solve_lower(L: np.ndarray, B: np.ndarray, trans: int = 0) -> np.ndarray:
-    """``L^-1 B`` (``trans=1``: ``L^-T B``) for lower-triangular ``L``."""
-    from scipy.linalg import solve_triangular
+    """``L^-1 B`` (``trans=1``: ``L^-T B``) for lower-triangular ``L`` (random x random) and ``B`` (random, ...).
 
-    return solve_triangular(L, B, lower=True, trans=trans)
+    Substitution in a compiled loop, not LAPACK: ``L`` is a few tastes across, and the population blocks call this
+    hundreds of times a sweep, where a library call's fixed cost (argument checks, waking BLAS threads on a busy
+    machine) was most of a sweep.
+    """
+    B = np.asarray(B, dtype=float)
+    flat = np.ascontiguousarray(B.reshape(B.shape[0], -1))
+    out = _substitute(np.ascontiguousarray(L, dtype=float), flat, trans == 1)
+    return out.reshape(B.shape)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _substitute(L: np.ndarray, B: np.ndarray, transposed: bool) -> np.ndarray:  # pragma: no cover - compiled
+    n, m = B.shape
+    X = np.empty((n, m))
+    if not transposed:  # forward: L X = B
+        for i in range(n):
+            for c in range(m):
+                acc = B[i, c]
+                for j in range(i):
+                    acc -= L[i, j] * X[j, c]
+                X[i, c] = acc / L[i, i]
+    else:  # backward: L^T X = B
+        for i in range(n - 1, -1, -1):
+            for c in range(m):
+                acc = B[i, c]
+                for j in range(i + 1, n):
+                    acc -= L[j, i] * X[j, c]
+                X[i, c] = acc / L[i, i]
+    return X
 
 
 def log_density(prob: BlockedProblem, state: BlockedState) -> float:
