@@ -342,8 +342,8 @@ def closing_line(report: dict[str, Any]) -> str:
 
 def format_verdict(report: dict[str, Any]) -> str:
     """A plain-text account of a :func:`check_folder` report, for printing."""
-    lines = [f"convergence verdict: {report.get('verdict', '?').upper()}"
-             f"  ({report.get('folder', '')})", ""]
+    where = f"  ({report['folder']})" if report.get("folder") else ""
+    lines = [f"convergence verdict: {report.get('verdict', '?').upper()}{where}", ""]
     checks = report.get("checks", [])
     width = max((len(f"{c['check']} {c['subject']}") for c in checks), default=10)
     for c in checks:
