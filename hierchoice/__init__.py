@@ -30,9 +30,11 @@ from .analysis import (
 )
 from .data import ChoicePanel, Term, ValidationSummary, load_panel, long_to_wide, read_table, wide_to_long
 from .diagnostics import (
+    Diagnostics,
     check_folder,
     compare_models,
     convergence_checks,
+    diagnose,
     format_verdict,
     hit_rate,
     holdout_validation,
@@ -79,7 +81,7 @@ __all__ = [
     "build_model", "model_layout", "ChoiceFit", "fit", "load_fit", "population_summary", "save_fit",
     "task_log_likelihood",
     # diagnostics
-    "check_folder", "compare_models", "convergence_checks", "format_verdict", "hit_rate", "holdout_validation",
+    "Diagnostics", "check_folder", "compare_models", "convergence_checks", "diagnose", "format_verdict", "hit_rate", "holdout_validation",
     "person_loo", "ppc_shares", "prior_predictive", "task_loo",
     # analysis and report
     "compare_shares", "elasticities", "person_tastes", "person_wtp", "population_tastes", "population_wtp",

@@ -13,7 +13,7 @@ from typing import Any
 from .exceptions import SpecError
 
 __all__ = ["check_keys", "choice", "text", "text_list", "label_list", "pattern_check", "flag", "whole_number",
-           "whole_number_option"]
+           "whole_number_option", "NOT_GIVEN", "aliased"]
 
 
 def check_keys(table: Mapping[str, Any], allowed: set[str], where: str) -> None:
@@ -97,3 +97,28 @@ def whole_number_option(minimum: int = 1) -> Callable[[str], int]:
 
     parse.__name__ = f"whole number >= {minimum}"  # argparse names the type by it
     return parse
+
+
+class _NotGiven:
+    """The default of an argument's old name: tells "not given" apart from every value, ``None`` included."""
+
+    def __repr__(self) -> str:
+        return "<not given>"
+
+
+#: The default of an alias argument (an old name kept working beside the ecosystem's name).
+NOT_GIVEN: Any = _NotGiven()
+
+
+def aliased(name: str, value: Any, alias: str, alias_value: Any, default: Any) -> Any:
+    """The value of an argument that also goes by an older name: ``random_seed`` / ``seed``, ``hdi_prob`` / ``prob``.
+
+    ``alias_value`` is :data:`NOT_GIVEN` unless the caller used the older name; both names with different values
+    is a :class:`~hierchoice.exceptions.SpecError`.
+    """
+    if alias_value is NOT_GIVEN:
+        return value
+    if value is not default and value != default and value != alias_value:
+        raise SpecError(f"{name}={value!r} and its alias {alias}={alias_value!r} were both given; give one of them "
+                        f"({name} is the documented name).")
+    return alias_value

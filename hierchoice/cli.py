@@ -51,8 +51,12 @@ def _cmd_fit(args: argparse.Namespace) -> int:
                  person_batch=args.person_batch if args.person_batch is not None else "auto",
                  client=args.scheduler)
     out = save_fit(result, args.out)
-    print(f"\n{result!r}, {result.info['wall_seconds']:.1f} s")
-    print(result.population().to_string(float_format=lambda v: f"{v:.4g}"))
+    post = result.posterior  # not the fit's display, which runs the convergence checks: hierchoice check does that
+    print(f"\nChoiceFit({result.panel.n_persons} persons, {result.panel.n_tasks} tasks, {post.sizes['chain']} chains x "
+          f"{post.sizes['draw']} draws, backend {result.info.get('backend')}), {result.info['wall_seconds']:.1f} s")
+    table = result.population()
+    print(table[["quantity", "attribute", "other", "mean", "sd", "hdi_low", "hdi_high", "eti_low", "eti_high"]]
+          .to_string(index=False, float_format=lambda v: f"{v:.4g}"))
     if result.approximate:
         from .inference.results import APPROXIMATE_CAUTION
 

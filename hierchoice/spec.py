@@ -428,6 +428,28 @@ class Spec:
     model: ModelOptions = field(default_factory=ModelOptions)
     sampling: SamplingOptions = field(default_factory=SamplingOptions)
 
+    def __post_init__(self) -> None:
+        """Check the spec when it is made, however it is made: ``Spec(**table)`` with the TOML file's tables (dicts)
+        reads each table as :meth:`from_dict` does, so a bad value is a :class:`SpecError` here, not later."""
+        for name, kind in _SECTIONS.items():
+            value = getattr(self, name)
+            if isinstance(value, kind) or (value is None and name in _OPTIONAL_SECTIONS):
+                continue
+            if not isinstance(value, Mapping):
+                raise SpecError(f"Spec({name}=...) must be a {kind.__name__} or a table like the spec file's "
+                                f"[{name}] (a dict); got {type(value).__name__}: {value!r}.")
+            object.__setattr__(self, name, kind.from_dict(value))
+        attrs = self.attributes
+        _check_keys(attrs, set(attrs) if isinstance(attrs, Mapping) else set(), "attributes")
+        if not all(isinstance(a, AttributeSpec) for a in attrs.values()):
+            object.__setattr__(self, "attributes", {str(n): a if isinstance(a, AttributeSpec) else
+                                                    AttributeSpec.from_dict(str(n), a) for n, a in attrs.items()})
+        if not self.attributes and not self.dynamics.active and self.constants is None:
+            raise SpecError(
+                "The spec has no [attributes.<name>] tables: at least one attribute (or constants) is needed."
+            )
+        self._check_consistency()
+
     @classmethod
     def from_dict(cls, table: Mapping[str, Any]) -> Spec:
         """Build and check a spec from a nested mapping shaped like the TOML file."""
@@ -452,8 +474,7 @@ class Spec:
             data=DataOptions.from_dict(table.get("data", {})),
             model=ModelOptions.from_dict(table.get("model", {})),
             sampling=SamplingOptions.from_dict(table.get("sampling", {})),
-        )
-        spec._check_consistency()
+        )  # checked for consistency by __post_init__
         return spec
 
     @classmethod
@@ -593,6 +614,14 @@ class Spec:
 
     def _repr_html_(self) -> str:
         return html_table(self._display_title(), self._display_rows(), notes=["spec.to_toml() shows every key."])
+
+
+#: The typed parts of a :class:`Spec` and the spec-file table each is read from.
+_SECTIONS: dict[str, type] = {
+    "columns": ColumnRoles, "constants": ConstantsSpec, "covariates": CovariatesSpec, "dynamics": DynamicsSpec,
+    "wide": WideSpec, "data": DataOptions, "model": ModelOptions, "sampling": SamplingOptions,
+}
+_OPTIONAL_SECTIONS = ("constants", "covariates", "wide")
 
 
 def _drop_none(table: dict[str, Any]) -> dict[str, Any]:

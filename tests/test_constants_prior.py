@@ -183,21 +183,23 @@ def test_population_summary_gives_a_lognormal_tastes_mean_and_median_labelled() 
     panel = small_panel()
     mu_p, sd_p = np.log(0.8), 0.6
     one = fake_fit(panel, {"price": mu_p, "time": -0.05}, {"price": sd_p, "time": 0.03}, chains=1, draws=1)
-    table = population_summary(one)
+    table = population_summary(one).set_index(["quantity", "attribute"])
     ln = stats.lognorm(s=sd_p, scale=np.exp(mu_p))
-    assert table.loc["mean_across_people[price]", "mean"] == pytest.approx(-ln.mean(), rel=1e-12)
-    assert table.loc["median_across_people[price]", "mean"] == pytest.approx(-ln.median(), rel=1e-12)
-    assert table.loc["sd_across_people[price]", "mean"] == pytest.approx(ln.std(), rel=1e-12)
-    # taste_mean of a lognormal taste is the mean of the log-taste, and its label says exp of it is the median
-    assert table.loc["taste_mean[price]", "mean"] == pytest.approx(mu_p)
-    assert "log-taste" in table.loc["taste_mean[price]", "kind"]
-    assert "median" in table.loc["taste_mean[price]", "kind"]
-    assert table.loc["taste_mean[time]", "kind"] == "population mean"
-    assert "mean_across_people[time]" not in table.index  # a normal taste's mean is taste_mean itself
+    assert table.loc[("mean_across_people", "price"), "mean"] == pytest.approx(-ln.mean(), rel=1e-12)
+    assert table.loc[("median_across_people", "price"), "mean"] == pytest.approx(-ln.median(), rel=1e-12)
+    assert table.loc[("sd_across_people", "price"), "mean"] == pytest.approx(ln.std(), rel=1e-12)
+    # population_mean of a lognormal taste is the mean of the log-taste, and its scale says so
+    assert table.loc[("population_mean", "price"), "mean"] == pytest.approx(mu_p)
+    assert table.loc[("population_mean", "price"), "scale"] == "log(-coefficient)"
+    assert table.loc[("population_mean", "time"), "scale"] == "coefficient"
+    # a normal taste's mean across people is its population mean itself
+    assert table.loc[("mean_across_people", "time"), "mean"] == pytest.approx(table.loc[("population_mean", "time"),
+                                                                                        "mean"])
 
     spread = fake_fit(panel, {"price": mu_p, "time": -0.05}, {"price": sd_p, "time": 0.03}, chains=2, draws=50,
                       spread=0.1, seed=4)
-    reported = population_summary(spread).loc["mean_across_people[price]", "mean"]
+    reported = population_summary(spread).set_index(["quantity", "attribute"]).loc[("mean_across_people", "price"),
+                                                                                  "mean"]
     people = simulate_population_tastes(spread, n_persons=4000, seed=9, max_draws=None)
     price = people.sel(attribute="price").values.reshape(100, 4000)  # (posterior draw, person)
     simulated = price.mean()

@@ -61,18 +61,19 @@ warning record).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, Union
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._args import NOT_GIVEN, aliased
 from .._records import Check, warn_records, warning_record
 from ..data.panel import _label, read_table
 from ..exceptions import DataError, FitError, SpecError, first_few
-from ..inference.results import ChoiceFit, thin_draws
+from ..inference.results import ChoiceFit, FitLike, as_fit, thin_draws
 from ..model.likelihood import choice_probabilities
 from .tastes import (
     DEFAULT_PROB,
@@ -94,6 +95,9 @@ __all__ = [
     "compare_shares",
 ]
 
+#: What a market may be: a DataFrame, a dict of columns, a list of rows, or a CSV / Parquet file.
+Market = Union[pd.DataFrame, Mapping[str, Any], Sequence[Mapping[str, Any]], str, Path]
+
 #: The two ways to integrate over people's tastes.
 PERSONS = ("population", "panel")
 
@@ -103,8 +107,19 @@ _NUMERIC_KINDS = ("numeric", "lag", "lead", "lagged_choice")
 # --------------------------------------------------------------------------- the market table
 
 
-def read_market(market: pd.DataFrame | str | Path) -> pd.DataFrame:
-    """Read a market table (DataFrame, CSV or Parquet) into a DataFrame (a copy)."""
+def read_market(market: Market) -> pd.DataFrame:
+    """Read a market into a DataFrame (a copy): a DataFrame, a CSV or Parquet file, a dict of columns
+    (``{"option": ["a", "b"], "fare": [3.5, 5.0]}``) or a list of rows (``[{"option": "a", "fare": 3.5}, ...]``)."""
+    if isinstance(market, Mapping) or (isinstance(market, (list, tuple)) and all(isinstance(r, Mapping)
+                                                                                for r in market)):
+        try:
+            market = pd.DataFrame(market)
+        except ValueError as err:  # columns of different lengths, scalars only
+            raise DataError(f"The market dict could not be read as a table ({err}): give a dict of equally long "
+                            "columns, e.g. {'option': ['a', 'b'], 'fare': [3.5, 5.0]}, or a list of rows.") from None
+    elif not isinstance(market, (pd.DataFrame, str, Path)):
+        raise DataError(f"A market is a DataFrame, a dict of columns, a list of rows or the path of a CSV or Parquet "
+                        f"file; got {type(market).__name__}.")
     frame = read_table(market)
     frame.columns = [str(c) for c in frame.columns]
     if len(frame) == 0:
@@ -134,7 +149,7 @@ def _design_range(result: ChoiceFit, k: int) -> tuple[float, float] | None:
     return (float(values.min()), float(values.max())) if values.size else None
 
 
-def market_design(result: ChoiceFit, market: pd.DataFrame | str | Path) -> xr.DataArray:
+def market_design(result: FitLike, market: Market) -> xr.DataArray:
     """Code a market table into the model's attribute columns.
 
     Returns
@@ -152,6 +167,7 @@ def market_design(result: ChoiceFit, market: pd.DataFrame | str | Path) -> xr.Da
         unknown category level, a duplicated label, or (with constants) a label
         that is not a fitted alternative.
     """
+    result = as_fit(result, "market_design")
     frame = read_market(market)
     spec, panel = result.spec, result.panel
     label_col = _label_column(result, frame)
@@ -240,12 +256,13 @@ def market_design(result: ChoiceFit, market: pd.DataFrame | str | Path) -> xr.Da
 
 
 def person_coefficients(
-    result: ChoiceFit,
+    result: FitLike,
     *,
     persons: str = "population",
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    seed: Any = NOT_GIVEN,
 ) -> xr.DataArray:
     """The coefficients to average shares over, dims (chain, draw, person, attribute).
 
@@ -253,10 +270,12 @@ def person_coefficients(
     ``persons="panel"`` takes the fitted respondents' posterior tastes (see the
     module docstring). ``max_draws`` thins the posterior draws in both modes.
     """
+    result = as_fit(result, "person_coefficients")
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     if persons not in PERSONS:
         raise SpecError(f"persons = {persons!r} is not one of: {', '.join(PERSONS)}.")
     if persons == "population":
-        beta = simulate_population_tastes(result, n_persons=n_persons, seed=seed, max_draws=max_draws)
+        beta = simulate_population_tastes(result, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
         return beta.rename(sim_person="person")
     try:
         draws = _person_draws(result)
@@ -284,17 +303,20 @@ def _share_array(beta: xr.DataArray, X: xr.DataArray) -> xr.DataArray:
 
 
 def share_draws(
-    result: ChoiceFit,
-    market: pd.DataFrame | str | Path | xr.DataArray,
+    result: FitLike,
+    market: Market | xr.DataArray,
     *,
     persons: str = "population",
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    seed: Any = NOT_GIVEN,
 ) -> xr.DataArray:
     """Posterior draws of the market shares, dims (chain, draw, alternative); they sum to 1 per draw."""
+    result = as_fit(result, "share_draws")
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     X = market if isinstance(market, xr.DataArray) else market_design(result, market)
-    beta = person_coefficients(result, persons=persons, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    beta = person_coefficients(result, persons=persons, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     out = _share_array(beta, X)
     out.attrs["warnings"] = list(X.attrs.get("warnings", []))
     out.attrs["persons"] = persons
@@ -309,21 +331,24 @@ def _finish(table: pd.DataFrame, prob: float, persons: str, records: Sequence[Ch
 
 
 def predict_shares(
-    result: ChoiceFit,
-    market: pd.DataFrame | str | Path,
+    result: FitLike,
+    market: Market,
     *,
     persons: str = "population",
-    prob: float = DEFAULT_PROB,
+    hdi_prob: float = DEFAULT_PROB,
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    prob: Any = NOT_GIVEN,
+    seed: Any = NOT_GIVEN,
 ) -> pd.DataFrame:
     """Predicted shares of a market with credible intervals.
 
     Parameters
     ----------
-    result : ChoiceFit
-    market : DataFrame or path
+    result : ChoiceFit or path
+        A fit, or the path of its results folder.
+    market : DataFrame, dict, list of dicts or path
         One row per alternative (see the module docstring).
     persons : {"population", "panel"}, default "population"
         Whose tastes to average over: new people from the population, or the
@@ -342,8 +367,10 @@ def predict_shares(
         eti_high, prob``; ``attrs["warnings"]`` lists extrapolation records and
         ``attrs["persons"]`` the mode.
     """
-    prob = check_prob(prob)
-    draws = share_draws(result, market, persons=persons, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    result = as_fit(result, "predict_shares")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
+    draws = share_draws(result, market, persons=persons, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     return _finish(summarize_draws(draws, prob=prob), prob, persons, draws.attrs["warnings"])
 
 
@@ -362,17 +389,19 @@ def _term_for(result: ChoiceFit, attribute: str) -> tuple[str, list[int]]:
 
 
 def sensitivity(
-    result: ChoiceFit,
-    market: pd.DataFrame | str | Path,
+    result: FitLike,
+    market: Market,
     *,
     alternative: str,
     attribute: str,
     values: Sequence[Any] | None = None,
     persons: str = "population",
-    prob: float = DEFAULT_PROB,
+    hdi_prob: float = DEFAULT_PROB,
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    prob: Any = NOT_GIVEN,
+    seed: Any = NOT_GIVEN,
 ) -> pd.DataFrame:
     """Shares as one alternative's attribute moves over a range, the rest of the market fixed.
 
@@ -395,7 +424,9 @@ def sensitivity(
         Columns ``value, alternative, mean, sd, median, hdi_low, hdi_high,
         eti_low, eti_high, prob``.
     """
-    prob = check_prob(prob)
+    result = as_fit(result, "sensitivity")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     frame = read_market(market)
     label_col = _label_column(result, frame)
     labels = [_label(v) for v in frame[label_col]]
@@ -412,7 +443,7 @@ def sensitivity(
             if span is None:
                 raise DataError(f"{attribute!r} has no value in the design to take a range from; give values=.")
             values = np.linspace(span[0], span[1], 11).tolist()
-    beta = person_coefficients(result, persons=persons, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    beta = person_coefficients(result, persons=persons, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     row = labels.index(str(alternative))
     pieces, records = [], []
     for value in values:
@@ -431,15 +462,17 @@ def sensitivity(
 
 
 def elasticities(
-    result: ChoiceFit,
-    market: pd.DataFrame | str | Path,
+    result: FitLike,
+    market: Market,
     *,
     attribute: str,
     persons: str = "population",
-    prob: float = DEFAULT_PROB,
+    hdi_prob: float = DEFAULT_PROB,
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    prob: Any = NOT_GIVEN,
+    seed: Any = NOT_GIVEN,
 ) -> pd.DataFrame:
     r"""Own and cross point elasticities of the shares with respect to a numeric attribute.
 
@@ -458,14 +491,16 @@ def elasticities(
         Columns ``attribute, changed, share_of, kind ("own"/"cross"), mean, sd,
         median, hdi_low, hdi_high, eti_low, eti_high, prob``.
     """
-    prob = check_prob(prob)
+    result = as_fit(result, "elasticities")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     column, ks = _term_for(result, attribute)
     if len(ks) != 1 or result.panel.terms[ks[0]].kind not in _NUMERIC_KINDS:
         raise SpecError(f"Elasticities need a numeric attribute; {attribute!r} is categorical. Compare scenarios "
                         "(compare_shares) to see the effect of a change of level.")
     k = ks[0]
     X = market_design(result, market)
-    beta = person_coefficients(result, persons=persons, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    beta = person_coefficients(result, persons=persons, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     b = beta.sel(attribute=list(X["attribute"].values)).values  # (C, D, N, K)
     P = _probabilities(b, X.values)  # (C, D, N, J)
     bk = b[..., k]
@@ -498,15 +533,17 @@ def elasticities(
 
 
 def compare_shares(
-    result: ChoiceFit,
-    base: pd.DataFrame | str | Path,
-    scenario: pd.DataFrame | str | Path,
+    result: FitLike,
+    base: Market,
+    scenario: Market,
     *,
     persons: str = "population",
-    prob: float = DEFAULT_PROB,
+    hdi_prob: float = DEFAULT_PROB,
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    prob: Any = NOT_GIVEN,
+    seed: Any = NOT_GIVEN,
 ) -> pd.DataFrame:
     """The change in shares from a base market to a scenario, with intervals.
 
@@ -522,9 +559,11 @@ def compare_shares(
         the summary of ``scenario - base``: ``mean, sd, median, hdi_low, hdi_high,
         eti_low, eti_high, prob``.
     """
-    prob = check_prob(prob)
+    result = as_fit(result, "compare_shares")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     Xb, Xs = market_design(result, base), market_design(result, scenario)
-    beta = person_coefficients(result, persons=persons, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    beta = person_coefficients(result, persons=persons, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     sb, ss = _share_array(beta, Xb), _share_array(beta, Xs)
     labels = list(dict.fromkeys(list(sb["alternative"].values) + list(ss["alternative"].values)))
     sb = sb.reindex(alternative=labels, fill_value=0.0)

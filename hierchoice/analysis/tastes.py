@@ -51,9 +51,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .._args import whole_number
+from .._args import NOT_GIVEN, aliased, whole_number
 from ..exceptions import FitError, SpecError
-from ..inference.results import ChoiceFit, thin_draws
+from ..inference.results import ChoiceFit, FitLike, as_fit, lend, thin_draws
 from ..model.transforms import latent_to_coefficient
 
 __all__ = [
@@ -209,7 +209,7 @@ def _quantile_name(q: float) -> str:
 
 
 def population_taste_draws(
-    result: ChoiceFit, *, quantiles: Sequence[float] = (0.1, 0.9)
+    result: FitLike, *, quantiles: Sequence[float] = (0.1, 0.9)
 ) -> xr.Dataset:
     """The implied distribution of each taste across people, draw by draw.
 
@@ -222,6 +222,7 @@ def population_taste_draws(
         or in WTP space willingness to pay, is positive). See the module docstring
         for the formulas.
     """
+    result = as_fit(result, "population_taste_draws")
     from scipy import special  # loaded on first use: importing hierchoice stays light
 
     qs = [float(q) for q in quantiles]
@@ -248,13 +249,15 @@ def population_taste_draws(
 
 
 def population_tastes(
-    result: ChoiceFit, *, prob: float = DEFAULT_PROB, quantiles: Sequence[float] = (0.1, 0.9)
+    result: FitLike, *, hdi_prob: float = DEFAULT_PROB, quantiles: Sequence[float] = (0.1, 0.9),
+    prob: Any = NOT_GIVEN,
 ) -> pd.DataFrame:
     """Population tastes with HDI and equal-tailed intervals: one tidy table.
 
     Parameters
     ----------
-    result : ChoiceFit
+    result : ChoiceFit or path
+        A fit, or the path of its results folder.
     prob : float, default 0.9
         Probability mass of the intervals.
     quantiles : sequence of float, default (0.1, 0.9)
@@ -284,7 +287,8 @@ def population_tastes(
     >>> table = population_tastes(result)                       # doctest: +SKIP
     >>> table.query("quantity == 'share_positive'")             # doctest: +SKIP
     """
-    prob = check_prob(prob)
+    result = as_fit(result, "population_tastes")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
     layout = result.layout
     post = result.posterior
     pieces: list[pd.DataFrame] = []
@@ -344,7 +348,7 @@ def _person_draws(result: ChoiceFit) -> xr.DataArray:
     return result.person_draws("Individual tastes")
 
 
-def person_tastes(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame:
+def person_tastes(result: FitLike, *, hdi_prob: float = DEFAULT_PROB, prob: Any = NOT_GIVEN) -> pd.DataFrame:
     """Each person's posterior coefficients: one row per person and attribute.
 
     The coefficients are in the user's units (in WTP space too: the person's
@@ -358,20 +362,22 @@ def person_tastes(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFr
         Columns ``person, attribute, mean, sd, median, hdi_low, hdi_high,
         eti_low, eti_high, prob``.
     """
-    prob = check_prob(prob)
+    result = as_fit(result, "person_tastes")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
     table = summarize_draws(_person_draws(result), prob=prob)
     table["prob"] = prob
     table.attrs["prob"] = prob
     return table
 
 
-def person_latent_draws(result: ChoiceFit) -> xr.DataArray:
+def person_latent_draws(result: FitLike) -> xr.DataArray:
     """Each person's tastes on the scale of the population's normal distribution.
 
     ``log(sign * beta)`` for a lognormal taste, the coefficient for a normal or
     fixed one; in WTP space the willingness to pay (or its log) for every attribute
     but price. Dims (chain, draw, person, attribute).
     """
+    result = as_fit(result, "person_latent_draws")
     layout = result.layout
     beta = _person_draws(result).transpose("chain", "draw", "person", "attribute")
     values = beta.sel(attribute=layout.names).values.copy()
@@ -394,7 +400,7 @@ def _covariate_shift(result: ChoiceFit, gamma: np.ndarray | None, z: np.ndarray)
     return np.einsum("nq,cdqk->cdnk", zc, gamma)
 
 
-def taste_shrinkage(result: ChoiceFit) -> pd.DataFrame:
+def taste_shrinkage(result: FitLike) -> pd.DataFrame:
     """How much each random taste's person estimates are pulled towards the population.
 
     Works on the scale of the population's normal distribution (the log of the
@@ -413,6 +419,7 @@ def taste_shrinkage(result: ChoiceFit) -> pd.DataFrame:
         their taste and the estimate sits at the population mean (strong
         shrinkage); near 1 their own choices pin it down.
     """
+    result = as_fit(result, "taste_shrinkage")
     layout = result.layout
     if not layout.random:
         return pd.DataFrame(columns=["attribute", "scale", "population_sd", "sd_of_person_means",
@@ -445,11 +452,12 @@ def taste_shrinkage(result: ChoiceFit) -> pd.DataFrame:
 
 
 def simulate_population_tastes(
-    result: ChoiceFit,
+    result: FitLike,
     *,
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    seed: Any = NOT_GIVEN,
 ) -> xr.DataArray:
     r"""Draw new people from the population distribution, once per posterior draw.
 
@@ -466,7 +474,8 @@ def simulate_population_tastes(
 
     Parameters
     ----------
-    result : ChoiceFit
+    result : ChoiceFit or path
+        A fit, or the path of its results folder.
     n_persons : int, default 1000
         Simulated people per posterior draw.
     seed : int or None, default 0
@@ -480,6 +489,8 @@ def simulate_population_tastes(
     xarray.DataArray
         Coefficients in the user's units, dims (chain, draw, sim_person, attribute).
     """
+    result = as_fit(result, "simulate_population_tastes")
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     n_persons = whole_number(n_persons, "n_persons")
     layout = result.layout
     post = thin_draws(result.posterior, max_draws)
@@ -515,3 +526,7 @@ def _safe_cholesky(corr: np.ndarray) -> np.ndarray:
     except np.linalg.LinAlgError:
         eye = np.eye(corr.shape[-1])
         return np.linalg.cholesky((corr + 1e-8 * eye) / (1 + 1e-8))
+
+
+# ChoiceFit.population() (a lower floor) is this table: one implementation of the population table
+lend("population", population_tastes)

@@ -53,14 +53,16 @@ are read directly, and the price coefficient is lognormal by construction.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._args import NOT_GIVEN, aliased
 from .._records import Check, warn_records, warning_record
 from ..exceptions import SpecError, first_few
-from ..inference.results import ChoiceFit, thin_draws
+from ..inference.results import ChoiceFit, FitLike, as_fit, thin_draws
 from .tastes import (
     DEFAULT_PROB,
     _covariate_shift,
@@ -92,8 +94,9 @@ NEAR_ZERO = 0.1
 MAX_NEAR_ZERO_MASS = 0.01
 
 
-def price_attribute(result: ChoiceFit) -> str:
+def price_attribute(result: FitLike) -> str:
     """The name of the price attribute (``model.price`` in the spec)."""
+    result = as_fit(result, "price_attribute")
     price = result.spec.model.price
     if price is None:
         raise SpecError(
@@ -177,12 +180,13 @@ def _price_taste(result: ChoiceFit) -> str:
     return layout.terms[layout.names.index(price_attribute(result))].taste
 
 
-def person_wtp_draws(result: ChoiceFit) -> xr.DataArray:
+def person_wtp_draws(result: FitLike) -> xr.DataArray:
     """Each person's WTP per posterior draw, dims (chain, draw, person, attribute).
 
     Preference space: :math:`-\\beta_{nk}/\\beta_{n,\\text{price}}` from ``person_taste``;
     WTP space: the model's ``person_wtp``.
     """
+    result = as_fit(result, "person_wtp_draws")
     names = _wtp_names(result)
     post = result.posterior
     if result.layout.wtp_space and "person_wtp" in post:
@@ -193,7 +197,7 @@ def person_wtp_draws(result: ChoiceFit) -> xr.DataArray:
     return (-beta.sel(attribute=names) / price).transpose("chain", "draw", "person", "attribute").rename("wtp")
 
 
-def mean_wtp_across_people(result: ChoiceFit, *, max_draws: int | None = 1000) -> xr.DataArray:
+def mean_wtp_across_people(result: FitLike, *, max_draws: int | None = 1000) -> xr.DataArray:
     r"""The mean WTP across the population, in closed form, for each posterior draw.
 
     For a person with latent tastes :math:`\eta_n \sim N(m_n, \Sigma)` (:math:`m_n = \mu + \Gamma^\top(z_n -
@@ -225,6 +229,7 @@ def mean_wtp_across_people(result: ChoiceFit, *, max_draws: int | None = 1000) -
         Dims (chain, draw, attribute) over the non-price terms, on the draws that
         :func:`population_wtp_draws` uses (the same ``max_draws`` thinning).
     """
+    result = as_fit(result, "mean_wtp_across_people")
     layout = result.layout
     names = _wtp_names(result)
     kp = layout.names.index(price_attribute(result))
@@ -267,12 +272,13 @@ def mean_wtp_across_people(result: ChoiceFit, *, max_draws: int | None = 1000) -
 
 
 def population_wtp_draws(
-    result: ChoiceFit,
+    result: FitLike,
     *,
     quantiles: Sequence[float] = (0.1, 0.9),
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    seed: Any = NOT_GIVEN,
 ) -> xr.Dataset:
     """WTP across people drawn from the population, summarised within each posterior draw.
 
@@ -286,8 +292,10 @@ def population_wtp_draws(
         ``price_near_zero`` over (chain, draw): the share of simulated people whose
         price coefficient is near zero. ``attrs["near_zero_mass"]`` pools it.
     """
+    result = as_fit(result, "population_wtp_draws")
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     names = _wtp_names(result)
-    beta = simulate_population_tastes(result, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    beta = simulate_population_tastes(result, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     price = beta.sel(attribute=price_attribute(result)).values  # (C, D, N)
     b = beta.sel(attribute=names).values  # (C, D, N, K)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -348,19 +356,22 @@ def _population_records(result: ChoiceFit, mass: float) -> tuple[list[Check], bo
 
 
 def population_wtp(
-    result: ChoiceFit,
+    result: FitLike,
     *,
-    prob: float = DEFAULT_PROB,
+    hdi_prob: float = DEFAULT_PROB,
     quantiles: Sequence[float] = (0.1, 0.9),
     n_persons: int = 1000,
-    seed: int | None = 0,
+    random_seed: int | None = 0,
     max_draws: int | None = 1000,
+    prob: Any = NOT_GIVEN,
+    seed: Any = NOT_GIVEN,
 ) -> pd.DataFrame:
     """Population WTP: statistics of WTP across people, with posterior intervals.
 
     Parameters
     ----------
-    result : ChoiceFit
+    result : ChoiceFit or path
+        A fit, or the path of its results folder.
     prob : float, default 0.9
     quantiles : sequence of float, default (0.1, 0.9)
         Quantiles of WTP across people to report (besides the median).
@@ -382,8 +393,10 @@ def population_wtp(
         :class:`~hierchoice._records.Check` list and ``attrs["robust"]`` whether
         means were withheld.
     """
-    prob = check_prob(prob)
-    ds = population_wtp_draws(result, quantiles=quantiles, n_persons=n_persons, seed=seed, max_draws=max_draws)
+    result = as_fit(result, "population_wtp")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
+    ds = population_wtp_draws(result, quantiles=quantiles, n_persons=n_persons, random_seed=seed, max_draws=max_draws)
     records, robust = _population_records(result, ds.attrs["near_zero_mass"])
     units = wtp_units(result)
     pieces = []
@@ -402,7 +415,7 @@ def population_wtp(
     return out
 
 
-def person_wtp(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame:
+def person_wtp(result: FitLike, *, hdi_prob: float = DEFAULT_PROB, prob: Any = NOT_GIVEN) -> pd.DataFrame:
     """Each person's posterior WTP: one row per person and attribute.
 
     Returns
@@ -417,7 +430,8 @@ def person_wtp(result: ChoiceFit, *, prob: float = DEFAULT_PROB) -> pd.DataFrame
         lognormal price keeps its means (with an ``info`` record for long tails).
         ``attrs["warnings"]`` holds the records.
     """
-    prob = check_prob(prob)
+    result = as_fit(result, "person_wtp")
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
     w = person_wtp_draws(result)
     records: list[Check] = []
     n_p = w.sizes["person"]

@@ -2,7 +2,8 @@
 
 Owns: convergence checks as records (:mod:`~hierchoice.diagnostics.checks`), predictive checks and holdout
 validation (:mod:`~hierchoice.diagnostics.predictive`), PSIS-LOO and model comparison
-(:mod:`~hierchoice.diagnostics.loo`), their plots (:mod:`~hierchoice.diagnostics.plots`), and the
+(:mod:`~hierchoice.diagnostics.loo`), their plots (:mod:`~hierchoice.diagnostics.plots`), all of them as one
+object for a fit (:func:`~hierchoice.diagnostics.overview.diagnose`), and the
 ``hierchoice check`` folder job (:mod:`~hierchoice.diagnostics.folder`, the one module here that uses all others).
 May import: ``hierchoice.inference`` and everything below it.
 """
@@ -23,6 +24,7 @@ from .loo import (
     person_loo,
     task_loo,
 )
+from .overview import Diagnostics, diagnose
 from .plots import save_figure, write_diagnostic_plots
 from .predictive import (
     hit_rate,
@@ -34,7 +36,7 @@ from .predictive import (
 )
 
 __all__ = [
-    "check_folder", "checks_frame", "compare_models", "convergence_checks", "format_verdict", "hit_rate",
+    "Diagnostics", "check_folder", "diagnose", "checks_frame", "compare_models", "convergence_checks", "format_verdict", "hit_rate",
     "holdout_validation", "overall_verdict", "parameter_diagnostics", "pareto_k_checks", "person_log_marginal",
     "person_loo", "posterior_choice_probabilities", "ppc_shares", "prior_predictive", "reliability", "save_figure",
     "task_loo", "write_diagnostic_plots",

@@ -1,6 +1,7 @@
 """Diagnostic figures: rank, trace, energy and pair plots (ArviZ), reliability and share plots.
 
-Every function returns a :class:`matplotlib.figure.Figure`; :func:`save_figure`
+Every function returns a :class:`matplotlib.figure.Figure` that pyplot does not hold (a notebook shows a
+returned figure once, not again when the cell ends); :func:`save_figure`
 writes one as PNG atomically and closes it, and :func:`write_diagnostic_plots`
 writes the whole set into a folder. Population parameters are plotted as the
 scalar labels of :func:`hierchoice.checks.population_draws` (``taste_sd[fare]``,
@@ -33,7 +34,12 @@ __all__ = [
 
 
 def _figure_of(axes: Any) -> Any:
-    return np.asarray(axes, dtype=object).ravel()[0].figure
+    """The figure ArviZ drew ``axes`` on, closed from pyplot: returned, it is shown once in a notebook, not twice."""
+    import matplotlib.pyplot as plt
+
+    fig = np.asarray(axes, dtype=object).ravel()[0].figure
+    plt.close(fig)
+    return fig
 
 
 def _population_dataset(idata: Any, max_parameters: int, table: pd.DataFrame | None = None) -> xr.Dataset:

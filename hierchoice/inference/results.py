@@ -23,28 +23,53 @@ interrupted write never leaves a half-written folder or damages an earlier one.
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Union
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
+from .._args import NOT_GIVEN, aliased
 from .._io import atomic_dir
 from ..data.panel import ChoicePanel, ValidationSummary
-from ..exceptions import ArchiveError, FitError, SpecError
+from ..exceptions import ArchiveError, FitError
 from ..model.build import ModelLayout, model_layout
 from ..spec import Spec
 
-__all__ = ["APPROXIMATE_CAUTION", "ChoiceFit", "population_summary", "thin_draws", "save_fit", "load_fit", "POSTERIOR_FILE"]
+__all__ = ["APPROXIMATE_CAUTION", "ChoiceFit", "FitLike", "as_fit", "lend", "population_summary", "thin_draws", "save_fit",
+           "load_fit", "POSTERIOR_FILE"]
 
 POSTERIOR_FILE = "posterior.nc"
+
+
+#: What the stages above this one lend the fit object. They sit on higher floors of the pipeline, so this module
+#: cannot import them; each registers its function here when it is imported (``import hierchoice`` imports them
+#: all): ``"diagnostics"`` (fit -> :class:`hierchoice.diagnostics.overview.Diagnostics`) and ``"population"``
+#: (fit, hdi_prob -> :func:`hierchoice.analysis.tastes.population_tastes`'s table).
+_LENT: dict[str, Callable[..., Any]] = {}
+
+
+def lend(name: str, function: Callable[..., Any]) -> None:
+    """Register the higher stage's ``function`` that :class:`ChoiceFit` uses for ``name`` (see :data:`_LENT`)."""
+    _LENT[name] = function
+
+
+def _lent(name: str) -> Callable[..., Any]:
+    if name not in _LENT:  # only when hierchoice.inference is used without the package above it
+        raise FitError(f"The fit's {name} needs the rest of hierchoice: import hierchoice first.")
+    return _LENT[name]
 
 
 @dataclass
 class ChoiceFit:
     """A fitted panel mixed logit: the posterior, the panel and the spec.
+
+    Its display (``repr`` and the notebook's HTML) leads with the convergence verdict and the worst R-hat,
+    bulk and tail ESS and divergences, from :attr:`diagnostics` (computed on first use, then kept), then the
+    population table (:meth:`population`).
 
     Attributes
     ----------
@@ -61,6 +86,7 @@ class ChoiceFit:
     spec: Spec
     layout: ModelLayout
     info: dict[str, Any] = field(default_factory=dict)
+    _diagnostics: Any = field(default=None, init=False, repr=False, compare=False)
 
     @property
     def posterior(self) -> xr.Dataset:
@@ -83,97 +109,93 @@ class ChoiceFit:
             )
         return self.idata.posterior["person_taste"]
 
-    def population(self, prob: float = 0.9) -> pd.DataFrame:
-        """Summary of population parameters with equal-tailed intervals (see :func:`population_summary`)."""
-        return population_summary(self, prob=prob)
+    @property
+    def diagnostics(self) -> Any:
+        """The fit's convergence checks as a rich object (:func:`hierchoice.diagnose`), computed once and kept.
+
+        Its predictive checks and PSIS-LOO are computed when first asked for; nothing is written to disk.
+        """
+        if self._diagnostics is None:
+            self._diagnostics = _lent("diagnostics")(self)
+        return self._diagnostics
+
+    def population(self, hdi_prob: float = 0.9, *, prob: Any = NOT_GIVEN) -> pd.DataFrame:
+        """The population table: :func:`hierchoice.population_tastes` of this fit (one implementation).
+
+        ``hdi_prob`` is the probability mass of the HDI (``hdi_low``, ``hdi_high``) and equal-tailed
+        (``eti_low``, ``eti_high``) intervals; ``prob`` is its older name.
+        """
+        hdi_prob = aliased("hdi_prob", hdi_prob, "prob", prob, 0.9)
+        return _lent("population")(self, hdi_prob=hdi_prob)
 
     def save(self, out: str | Path, *, overwrite: bool = True) -> Path:
         """Write the results folder atomically (see :func:`save_fit`)."""
         return save_fit(self, out, overwrite=overwrite)
 
-    def __repr__(self) -> str:
+    def _headline(self) -> tuple[str, list[str]]:
+        """The verdict and the lines that lead the display (never raises: a failure to check is shown)."""
         post = self.idata.posterior
-        return (
-            f"ChoiceFit({self.panel.n_persons} persons, {self.panel.n_tasks} tasks, "
-            f"{post.sizes['chain']} chains x {post.sizes['draw']} draws, backend {self.info.get('backend')}"
-            f"{', approximate' if self.approximate else ''})"
-        )
+        size = (f"{self.panel.n_persons:,} persons, {self.panel.n_tasks:,} tasks, {post.sizes['chain']} chains x "
+                f"{post.sizes['draw']} draws, backend {self.info.get('backend')}"
+                f"{', approximate (not for reporting)' if self.approximate else ''}")
+        try:
+            diag = self.diagnostics
+            verdict, lines = diag.verdict, diag.headline()
+        except Exception as err:  # a display must show, whatever went wrong with the checks
+            verdict, lines = "not checked", [f"the convergence checks could not run: {type(err).__name__}: {err}"]
+        return verdict, [size, *lines]
+
+    def __repr__(self) -> str:
+        verdict, lines = self._headline()
+        head = f"ChoiceFit: convergence {verdict.upper()}"
+        try:
+            table = self.population()
+            rows = table[table["quantity"].isin(("population_mean", "population_sd"))]
+            shown = rows[["quantity", "attribute", "mean", "sd", "hdi_low", "hdi_high"]].to_string(
+                index=False, float_format=lambda v: f"{v:.4g}")
+            tail = [f"population ({table.attrs.get('prob', 0.9):.0%} HDI; fit.population() for every row):", shown]
+        except Exception as err:  # noqa: BLE001 - the display names the problem instead of failing
+            tail = [f"population table unavailable: {type(err).__name__}: {err}"]
+        return "\n".join([head, *(f"  {line}" for line in lines), *tail])
 
     def _repr_html_(self) -> str:
         import html
 
-        table = self.population().to_html(float_format=lambda v: f"{v:.4g}")
-        return f"<p>{html.escape(repr(self))}</p>{table}"
+        verdict, lines = self._headline()
+        colour = {"pass": "#1f6f43", "warn": "#8a5a00"}.get(verdict, "#a3161a")
+        words = {"pass": "converged", "warn": "converged with warnings", "fail": "NOT converged: do not use these "
+                 "numbers yet"}.get(verdict, "not checked")
+        items = "".join(f"<li>{html.escape(line)}</li>" for line in lines)
+        try:
+            table = self.population().to_html(index=False, float_format=lambda v: f"{v:.4g}")
+        except Exception as err:  # noqa: BLE001
+            table = f"<p>population table unavailable: {html.escape(f'{type(err).__name__}: {err}')}</p>"
+        return (f"<div><p style='border-left:6px solid {colour};padding:4px 10px;font-weight:600;color:{colour}'>"
+                f"ChoiceFit &mdash; convergence {html.escape(verdict.upper())} ({html.escape(words)})</p>"
+                f"<ul>{items}</ul>{table}</div>")
 
 
-def _lognormal_moments(mu: np.ndarray, sd: np.ndarray, sign: float) -> dict[str, tuple[np.ndarray, str]]:
-    """The distribution across people of a lognormal taste ``sign * exp(eta)``, ``eta ~ N(mu, sd)``: row name, kind."""
-    return {
-        "mean_across_people": (sign * np.exp(mu + sd**2 / 2), "mean across people: s*exp(mu + sigma^2/2)"),
-        "median_across_people": (sign * np.exp(mu), "median across people: s*exp(mu)"),
-        "sd_across_people": (np.exp(mu + sd**2 / 2) * np.sqrt(np.expm1(sd**2)),
-                             "SD across people: exp(mu + sigma^2/2)*sqrt(exp(sigma^2) - 1)"),
-    }
+#: What the analysis functions, the report and the checks take: a fit object or the path of its results folder.
+FitLike = Union[ChoiceFit, str, Path]
 
 
-def population_summary(result: ChoiceFit, prob: float = 0.9) -> pd.DataFrame:
-    r"""Population parameters with posterior means, SDs and equal-tailed ``prob`` intervals (``eti_low``, ``eti_high``).
+def as_fit(source: Any, what: str = "this function") -> ChoiceFit:
+    """A :class:`ChoiceFit` from a fit object or a results folder (a path); a :class:`FitError` for anything else."""
+    if isinstance(source, ChoiceFit):
+        return source
+    if isinstance(source, (str, Path)):
+        return load_fit(source)
+    hint = ""
+    if type(source).__name__ == "InferenceData":
+        hint = " An InferenceData alone lacks the panel and spec: pass the ChoiceFit itself (not its .idata)."
+    raise FitError(f"{what} takes a fit (what hierchoice.fit returns) or the path of a results folder; got "
+                   f"{type(source).__name__}.{hint}")
 
-    Rows are ``taste_mean[<attr>]``, ``taste_sd[<attr>]``, ``taste_corr[<a>,<b>]`` and
-    ``covariate_effect[<cov>,<attr>]``; the ``kind`` column says what each is. For a
-    lognormal taste :math:`\beta = s\exp(\eta)`, :math:`\eta\sim N(\mu,\sigma)`,
-    ``taste_mean`` and ``taste_sd`` are :math:`\mu` and :math:`\sigma` of the log-taste
-    :math:`\eta`, so :math:`s\,e^{\mu}` is the **median** coefficient across people, not its
-    mean; after the parameters come the taste's distribution across people:
-    ``mean_across_people[<attr>]`` (:math:`s\,e^{\mu+\sigma^2/2}`),
-    ``median_across_people[<attr>]`` (:math:`s\,e^{\mu}`) and ``sd_across_people[<attr>]``
-    (:math:`e^{\mu+\sigma^2/2}\sqrt{e^{\sigma^2}-1}`), each computed draw by draw (moments of
-    the lognormal: Johnson, Kotz & Balakrishnan 1994, *Continuous Univariate Distributions*
-    vol. 1, ch. 14). The columns ``mean``, ``sd``, ``eti_low``, ``eti_high`` always summarise the
-    posterior of the row's quantity.
-    """
-    if not 0 < prob < 1:
-        raise SpecError(f"prob must be in (0, 1), got {prob!r}.")
-    post = result.posterior
-    layout = result.layout
-    lo_q, hi_q = (1 - prob) / 2, 1 - (1 - prob) / 2
-    rows: list[dict[str, Any]] = []
 
-    def add(name: str, samples: np.ndarray, kind: str) -> None:
-        flat = np.asarray(samples).reshape(-1)
-        rows.append({"parameter": name, "kind": kind, "mean": flat.mean(), "sd": flat.std(ddof=1) if flat.size > 1 else 0.0,
-                     "eti_low": np.quantile(flat, lo_q), "eti_high": np.quantile(flat, hi_q)})
-
-    mean = post["taste_mean"]
-    sd = post["taste_sd"] if "taste_sd" in post else None
-    for k, name in enumerate(layout.names):
-        add(f"taste_mean[{name}]", mean.sel(attribute=name).values,
-            "mu: mean of log-taste; s*exp(mu) = median across people" if layout.is_lognormal(k) else "population mean")
-    if sd is not None:
-        for name in layout.random_names:
-            k = layout.names.index(name)
-            add(f"taste_sd[{name}]", sd.sel(random_attribute=name).values,
-                "sigma: SD of log-taste" if layout.is_lognormal(k) else "population SD")
-    for k, name in enumerate(layout.names):
-        if layout.is_lognormal(k):
-            m = mean.sel(attribute=name).values
-            s_ = sd.sel(random_attribute=name).values if sd is not None and name in layout.random_names else 0 * m
-            for key, (vals, kind) in _lognormal_moments(m, s_, layout.sign(k)).items():
-                add(f"{key}[{name}]", vals, kind)
-    if "taste_corr" in post:
-        names = layout.random_names
-        for i in range(len(names)):
-            for j in range(i + 1, len(names)):
-                add(f"taste_corr[{names[i]},{names[j]}]",
-                    post["taste_corr"].isel(random_attribute=i, random_attribute_bis=j).values, "correlation")
-    if "covariate_effect" in post:
-        for c in post["covariate_effect"]["covariate"].values:
-            for a in post["covariate_effect"]["shifted_attribute"].values:
-                add(f"covariate_effect[{c},{a}]", post["covariate_effect"].sel(covariate=c, shifted_attribute=a).values,
-                    "covariate shift of mean")
-    table = pd.DataFrame(rows).set_index("parameter")
-    table.attrs["prob"] = prob
-    return table
+def population_summary(result: ChoiceFit | str | Path, hdi_prob: float = 0.9, *, prob: Any = NOT_GIVEN) -> pd.DataFrame:
+    """The population table of a fit: the same table as :meth:`ChoiceFit.population` and
+    :func:`hierchoice.population_tastes` (kept under this name for older code)."""
+    return as_fit(result, "population_summary").population(hdi_prob, prob=prob)
 
 
 #: What every output of an approximate (ADVI) fit says about it: figures measured on the B1 benchmark

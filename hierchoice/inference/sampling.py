@@ -18,18 +18,19 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import xarray as xr
 
 from .._backend import load_backend, quiet_pymc_logs
 from .._display import Status
-from ..data.panel import ChoicePanel
-from ..exceptions import FitError, SpecError
+from ..data.panel import ChoicePanel, load_panel
+from ..exceptions import DataError, FitError, SpecError
 from ..model.build import POPULATION_VARS, build_model, model_layout
 from ..model.likelihood import difference_data, task_loglik_numpy
 from ..spec import Spec, load_spec
 from .results import ChoiceFit
 
-__all__ = ["fit", "choose_method", "AUTO_BLOCKED_PERSONS", "resolve_backend", "task_log_likelihood", "add_log_likelihood", "REPORTED_VARS"]
+__all__ = ["fit", "as_panel", "choose_method", "AUTO_BLOCKED_PERSONS", "resolve_backend", "task_log_likelihood", "add_log_likelihood", "REPORTED_VARS"]
 
 log = logging.getLogger("hierchoice")
 
@@ -165,12 +166,13 @@ def _person_batch(person_batch: int | str | None, n_persons: int, method: str) -
 
 
 def fit(
-    panel: ChoicePanel,
+    panel: ChoicePanel | pd.DataFrame | str | Path,
     spec: Spec | Mapping[str, Any] | str | Path | None = None,
     *,
     draws: int | None = None,
     tune: int | None = None,
     chains: int | None = None,
+    random_seed: int | None = None,
     seed: int | None = None,
     backend: str | None = None,
     target_accept: float | None = None,
@@ -188,11 +190,16 @@ def fit(
 
     Parameters
     ----------
-    panel : ChoicePanel
+    panel : ChoicePanel, DataFrame or path
+        A validated panel (:func:`hierchoice.load_panel`), or the choice table itself (a DataFrame, or a CSV or
+        Parquet file), which is then validated under ``spec`` first: ``fit(df, spec)`` is
+        ``fit(load_panel(df, spec), spec)``.
     spec : Spec, mapping or path, optional
-        Defaults to the panel's own spec.
-    draws, tune, chains, seed, backend, target_accept, cores : optional
-        See ``docs/spec.md`` ([sampling]).
+        Defaults to the panel's own spec; needed with a table.
+    draws, tune, chains, random_seed, backend, target_accept, cores : optional
+        See ``docs/spec.md`` ([sampling]); ``random_seed`` is ``sampling.seed``.
+    seed : int, optional
+        The older name of ``random_seed`` (either may be given, not both with different values).
     progressbar : bool, default True
     method : {"nuts", "blocked", "advi"}, optional
         Defaults to the spec's ``sampling.method``, whose default ``"auto"`` is
@@ -231,6 +238,10 @@ def fit(
     -------
     ChoiceFit
     """
+    panel = as_panel(panel, spec)
+    if random_seed is not None and seed is not None and random_seed != seed:
+        raise SpecError(f"random_seed={random_seed!r} and its alias seed={seed!r} were both given; give one of them.")
+    seed = random_seed if random_seed is not None else seed
     if method is None:
         method = (panel.spec if spec is None else load_spec(spec)).sampling.method
     if method == "auto":
@@ -290,6 +301,19 @@ def fit(
     if result.has_person_draws:
         add_log_likelihood(result)
     return result
+
+
+def as_panel(data: Any, spec: Spec | Mapping[str, Any] | str | Path | None = None) -> ChoicePanel:
+    """A :class:`ChoicePanel` from a panel, or from a choice table (DataFrame, CSV or Parquet path) and a spec."""
+    if isinstance(data, ChoicePanel):
+        return data
+    if isinstance(data, (pd.DataFrame, str, Path)):
+        if spec is None:
+            raise SpecError("A choice table needs a spec to be read: fit(table, spec) with the spec as a dict, a "
+                            "TOML path or a Spec (or validate it first: hierchoice.load_panel(table, spec)).")
+        return load_panel(data, spec)
+    raise DataError(f"Expected a ChoicePanel (hierchoice.load_panel) or a choice table (a DataFrame, or a CSV or "
+                    f"Parquet path) with a spec; got {type(data).__name__}.")
 
 
 #: From this many persons ``method = "auto"`` uses the blocked sampler. Measured (docs/blocked.md): at 10,000 persons

@@ -1,6 +1,7 @@
 """The stakeholder report: one self-contained HTML file and CSV tables beside it.
 
-:func:`write_report` reads a results folder and writes, into the same folder,
+:func:`write_report` reads a results folder (or takes a fit and a folder to write into) and writes, into that
+folder,
 
 ``report.html``
     One file that opens offline in any browser: plots are embedded PNG images
@@ -40,9 +41,12 @@ from typing import Any
 
 import pandas as pd
 
-from .._io import atomic_write_text, write_with
+from .._args import NOT_GIVEN, aliased
+from .._io import atomic_write_text, make_folder, write_with
+from ..analysis.shares import Market
 from ..analysis.tastes import DEFAULT_PROB, check_prob, person_tastes, population_tastes
-from ..inference.results import ChoiceFit, load_fit
+from ..exceptions import ArchiveError
+from ..inference.results import ChoiceFit, FitLike, as_fit
 from .markup import _e, _num
 from .sections import (
     _cautions_section,
@@ -149,20 +153,25 @@ def _verdict_block(status: dict[str, Any]) -> str:
 # --------------------------------------------------------------------------- the report
 
 
-def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None = None,
-                 prob: float = DEFAULT_PROB, title: str | None = None) -> Path:
+def write_report(source: FitLike, *, out: str | Path | None = None, market: Market | None = None,
+                 hdi_prob: float = DEFAULT_PROB, title: str | None = None, prob: Any = NOT_GIVEN) -> Path:
     """Write ``report.html`` and its CSV tables into a results folder.
 
     Parameters
     ----------
-    folder : path
-        A results folder written by :func:`hierchoice.save_fit`.
-    market : DataFrame or path, optional
+    source : path or ChoiceFit
+        A results folder written by :func:`hierchoice.save_fit` (the report goes into it), or a fit in memory
+        (the report goes into ``out``).
+    out : path, optional
+        With a fit: the folder to write the report, its tables and the diagnostics into (made if it does not
+        exist; a folder hierchoice wrote, such as the fit's results folder, may be reused). With a results
+        folder: leave it unset.
+    market : DataFrame, dict, list of rows or path, optional
         A market scenario (see :mod:`hierchoice.analysis.shares`) whose predicted shares,
         elasticities and price sensitivity the report shows; ``shares.csv`` is
         written with it.
-    prob : float, default 0.9
-        Probability mass of the credible intervals.
+    hdi_prob : float, default 0.9
+        Probability mass of the credible intervals (HDI and equal-tailed); ``prob`` is its older name.
     title : str, optional
         What the results are of (the page title reads "Choice model results: TITLE"). Default: the results
         folder's name, or its parent's when the folder has a generic name such as ``results``.
@@ -179,16 +188,26 @@ def write_report(folder: str | Path, *, market: pd.DataFrame | str | Path | None
     (which writes it). If neither is possible the report says so at the top and
     marks every section provisional; it is written all the same.
     """
-    prob = check_prob(prob)
-    folder = Path(folder)
-    result = load_fit(folder)
+    prob = check_prob(aliased("hdi_prob", hdi_prob, "prob", prob, DEFAULT_PROB))
+    if isinstance(source, ChoiceFit):
+        if out is None:
+            raise ArchiveError("write_report(fit) needs out=, the folder to write report.html, its tables and the "
+                               "diagnostics into (or pass the fit's results folder instead of the fit).")
+        result, folder = source, make_folder(out, "results")
+    else:
+        result = as_fit(source, "write_report")
+        folder = Path(source)
+        if out is not None and Path(out).resolve() != folder.resolve():
+            raise ArchiveError(f"The report of the results folder {str(folder)!r} is written into that folder; "
+                               "leave out= unset, or pass hierchoice.load_fit(folder) with out= to write it "
+                               "elsewhere.")
     status = convergence_status(folder, result)
     provisional = status["verdict"] in ("fail", "not checked")
     csv: dict[str, pd.DataFrame] = {}
 
-    pop = _with_units(result, population_tastes(result, prob=prob))
+    pop = _with_units(result, population_tastes(result, hdi_prob=prob))
     csv["population_tastes.csv"] = pop
-    persons = _with_units(result, person_tastes(result, prob=prob)) if result.has_person_draws else None
+    persons = _with_units(result, person_tastes(result, hdi_prob=prob)) if result.has_person_draws else None
     if persons is not None:
         csv["person_tastes.csv"] = persons
     sections: list[tuple[str, str, str, bool]] = [
