@@ -16,6 +16,7 @@ import numpy as np
 from .._io import atomic_write_text
 from .._records import jsonable, overall_verdict
 from ..inference.results import load_fit
+from ..model.build import implied_priors
 from .checks import (
     _REF_COMMON,
     _REF_DEPTH,
@@ -43,6 +44,7 @@ from .predictive import (
     ppc_shares,
     reliability,
 )
+from .sensitivity import SENSITIVITY_THRESHOLD, sensitivity_checks, sensitivity_table
 
 __all__ = ["check_folder", "format_verdict", "closing_line", "THRESHOLDS"]
 
@@ -54,6 +56,8 @@ THRESHOLDS = {
     "divergences": {"pass_at_most": 0, "reference": _REF_DIV},
     "tree_depth": {"pass_at_most": 0.0, "reference": _REF_DEPTH},
     "lognormal_sd": {"warn_below": LOG_SD_COLLAPSED, "warn_above": LOG_SD_LARGE, "reference": _REF_COMMON},
+    "prior_sensitivity": {"warn_at": SENSITIVITY_THRESHOLD, "reference": "Kallioinen, Paananen, Bürkner & Vehtari "
+                          "2024, Statistics and Computing 34:57"},
 }
 
 def check_folder(folder: str | Path, *, out: str | Path | None = None,
@@ -125,6 +129,8 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
             }
         else:
             report["notes"].append("the fit stores no person draws: hit rate, PPC and LOO were skipped")
+        report["sensitivity"] = _sensitivity_dict(result)
+        report["priors"] = implied_priors(result.layout, result.spec.model.prior_scale)
         plots = write_diagnostic_plots(result, target, reliability_table=rel, shares_table=shares, table=table)
         holdout = target / "holdout.json"
         if holdout.is_file():
@@ -135,6 +141,16 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
     report = jsonable(report)
     atomic_write_text(target / "diagnostics.json", json.dumps(report, indent=2) + "\n")
     return report, code
+
+
+def _sensitivity_dict(result: Any) -> dict[str, Any]:
+    """Power-scaling prior / likelihood sensitivity of the population parameters, with graded records.
+
+    Graded apart from the convergence checks: a prior-dominated parameter warns but does not change the exit code.
+    """
+    table = sensitivity_table(result)
+    return {"table": table, "threshold": table.attrs["threshold"], "delta": table.attrs["delta"],
+            "checks": [c.to_dict() for c in sensitivity_checks(table)]}
 
 
 def _loo_dict(loo: Any) -> dict[str, Any]:
@@ -203,6 +219,17 @@ def format_verdict(report: dict[str, Any]) -> str:
         for c in loo.get("checks", []):
             if c["verdict"] != "pass":
                 lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
+    sens = report.get("sensitivity")
+    if sens:
+        flagged = [c for c in sens.get("checks", []) if c["verdict"] != "pass"]
+        lines += ["", f"prior sensitivity (power-scaling, threshold {sens['threshold']:g}): "
+                      f"{len(flagged)} of {len(sens.get('checks', []))} population parameters sensitive"]
+        for row in sens.get("table", []):
+            lik = row.get("likelihood")
+            lines.append(f"  {row['parameter']:<{width}}  prior {row['prior']:.3f}  likelihood "
+                         f"{'n/a' if lik is None else f'{lik:.3f}'}  {row.get('diagnosis', '')}")
+        for c in flagged:
+            lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
     for note in report.get("notes", []):
         lines.append(f"note: {note}")
     if report.get("plots"):
