@@ -224,10 +224,12 @@ def format_verdict(report: dict[str, Any]) -> str:
         flagged = [c for c in sens.get("checks", []) if c["verdict"] != "pass"]
         lines += ["", f"prior sensitivity (power-scaling, threshold {sens['threshold']:g}): "
                       f"{len(flagged)} of {len(sens.get('checks', []))} population parameters sensitive"]
+        def shown(v: Any) -> str:
+            return "n/a" if v is None else f"{v:.3f}"
+
         for row in sens.get("table", []):
-            lik = row.get("likelihood")
-            lines.append(f"  {row['parameter']:<{width}}  prior {row['prior']:.3f}  likelihood "
-                         f"{'n/a' if lik is None else f'{lik:.3f}'}  {row.get('diagnosis', '')}")
+            lines.append(f"  {row['parameter']:<{width}}  prior {shown(row.get('prior'))}  likelihood "
+                         f"{shown(row.get('likelihood'))}  {row.get('diagnosis', '')}")
         for c in flagged:
             lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
     for note in report.get("notes", []):
