@@ -134,8 +134,9 @@ def test_100_households_defaults_cover_true_constant_sds_and_are_not_prior_sensi
     Measured over seeds 0-3 (docs/model.md, "Constants' SDs"): every interval covered, largest prior sensitivity
     of any population parameter 0.040 / 0.033 / 0.043 / 0.045. The 0.05 is the paper's magnitude threshold, not a
     test level; the seed is fixed, so the test is deterministic. For a calibrated posterior a 90 % interval misses
-    10 % of the time, so two covered SDs fail for an arbitrary seed with probability at most 19 %; with the old
-    HalfNormal(1) prior the same seed's intervals miss (measured: see the report of issue 19).
+    10 % of the time, so two covered SDs fail for an arbitrary seed with probability at most 19 %. Negative control,
+    measured: with the old HalfNormal(1) prior the same seed's interval of the SD of c (3.27-4.53) misses the
+    realised 4.75 and both SDs' prior sensitivities are 0.25 and 0.30, so the test fails.
     """
     result, true_sd, table = _fit(100, seed=0)
     summary = result.population()

@@ -258,9 +258,9 @@ _ADVICE = {
                         "{t}, likelihood sensitivity {lk:.3f} < {t}). Widen the prior (model.prior_scale) or collect "
                         "more persons; read the number as the prior's."),
     "prior-data conflict": ("prior-data conflict: both the prior ({p:.3f}) and the data ({lk:.3f}) move this number "
-                            "(>= {t}); the data pull against the prior. Check the prior's scale in your units "
-                            "(the report's prior table) and widen it (model.prior_scale) if it rules out what the "
-                            "data say."),
+                            "(>= {t}); the data pull against the prior, which still moves the reported number. "
+                            "Check the prior in your units (the report's prior table); widen the prior "
+                            "(model.prior_scale) or collect more persons."),
 }
 
 
