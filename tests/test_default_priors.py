@@ -80,7 +80,7 @@ def test_implied_priors_are_the_documented_priors_in_the_users_units() -> None:
     for key, (lo, hi) in want.items():
         assert table.loc[key, "eti_low"] == pytest.approx(lo, rel=1e-9), key
         assert table.loc[key, "eti_high"] == pytest.approx(hi, rel=1e-9), key
-    # the constant's SD: SDs of 3-6 inside the 90 % interval (0.31, 8.2), P(SD > 6) = 23 %, P(SD > 10) = 4.6 %
+    # the constant's SD: SDs of 3-6 inside the 90 % interval (0.31, 9.8), P(SD > 6) = 23 %, P(SD > 10) = 4.6 %
     assert table.loc[("asc:b", "taste_sd"), "eti_low"] < 3 and table.loc[("asc:b", "taste_sd"), "eti_high"] > 6
 
 

@@ -130,7 +130,7 @@ def check_folder(folder: str | Path, *, out: str | Path | None = None,
         else:
             report["notes"].append("the fit stores no person draws: hit rate, PPC and LOO were skipped")
         report["sensitivity"] = _sensitivity_dict(result)
-        report["priors"] = implied_priors(result.layout, result.spec.model.prior_scale)
+        report["priors"] = implied_priors(result.layout, result.spec.model.prior_scale).to_dict(orient="records")
         plots = write_diagnostic_plots(result, target, reliability_table=rel, shares_table=shares, table=table)
         holdout = target / "holdout.json"
         if holdout.is_file():

@@ -206,8 +206,8 @@ def implied_priors(layout: ModelLayout, prior_scale: float = 1.0, prob: float = 
         centre = layout.log_shift(k) if logn else 0.0
         sd = scales.mean_sd[k] * unit
         wtp = layout.wtp_space and k != layout.price
-        what = ("mean of the log of the coefficient" if logn
-                else "willingness to pay (mean across people)" if wtp else "coefficient (mean across people)")
+        noun = "constant" if term.kind == "constant" else "willingness to pay" if wtp else "coefficient"
+        what = "mean of the log of the coefficient" if logn else f"{noun} (mean across people)"
         rows.append({"attribute": term.name, "parameter": "taste_mean", "what": what,
                      "distribution": f"Normal({centre:.4g}, {sd:.4g})",
                      "eti_low": centre + sd * stats.norm.ppf(lo), "eti_high": centre + sd * stats.norm.ppf(hi)})
@@ -215,7 +215,7 @@ def implied_priors(layout: ModelLayout, prior_scale: float = 1.0, prob: float = 
             s = scales.sd_sd[layout.random.index(k)] * unit
             rows.append({"attribute": term.name, "parameter": "taste_sd",
                          "what": ("SD of the log of the coefficient" if logn
-                                  else f"SD of the {'willingness to pay' if wtp else 'coefficient'} across people"),
+                                  else f"SD of the {noun} across people"),
                          "distribution": f"HalfNormal({s:.4g})",
                          "eti_low": s * stats.halfnorm.ppf(lo), "eti_high": s * stats.halfnorm.ppf(hi)})
     out = pd.DataFrame(rows, columns=["attribute", "parameter", "what", "distribution", "eti_low", "eti_high"])
