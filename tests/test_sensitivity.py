@@ -114,7 +114,8 @@ def test_population_log_prior_is_the_documented_density_in_the_users_units() -> 
     HalfNormal(1) on the standardised scale, i.e. Normal(0, 2.5 / s) and HalfNormal(1 / s) in the user's units
     (s: the attribute's SD over available alternatives); a lognormal taste's mean of the log Normal(log(1/s),
     1) and SD of the log HalfNormal(0.5); the correlation matrix LKJ(2), density proportional to det(Omega)^(eta-1)
-    (Lewandowski, Kurowicka & Joe 2009). Compared up to one constant (the weights are normalised).
+    (Lewandowski, Kurowicka & Joe 2009). Compared up to one constant (the weights are normalised). Negative
+    controls, run: draws not mapped back to the internal scale (unit factor 1), or the LKJ term left out, fail.
     """
     panel = small_panel(model={"correlated": True})
     fit = fake_fit(panel, {"price": 0.1, "time": -0.05}, {"price": 0.3, "time": 0.02},

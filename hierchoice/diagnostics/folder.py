@@ -219,6 +219,12 @@ def format_verdict(report: dict[str, Any]) -> str:
         for c in loo.get("checks", []):
             if c["verdict"] != "pass":
                 lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
+    priors = report.get("priors")
+    if priors:
+        lines += ["", "priors in the data's units (90 % prior intervals; docs/model.md):"]
+        for r in priors:
+            lines.append(f"  {r['parameter']}[{r['attribute']}]  {r['distribution']}  "
+                         f"{r['eti_low']:.3g} to {r['eti_high']:.3g}  ({r['what']})")
     sens = report.get("sensitivity")
     if sens:
         flagged = [c for c in sens.get("checks", []) if c["verdict"] != "pass"]
