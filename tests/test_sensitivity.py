@@ -171,3 +171,17 @@ def test_sensitivity_table_of_a_fit_names_every_population_parameter() -> None:
     table = sensitivity_table(fit)
     assert list(table.index) == ["taste_mean[price]", "taste_sd[price]"]
     assert np.isfinite(table[["prior", "likelihood"]].to_numpy()).all()
+
+
+def test_a_fit_without_person_draws_has_no_likelihood_sensitivity_and_says_so() -> None:
+    """No person draws, no likelihood: likelihood sensitivity NaN, and a sensitive parameter is "prior-sensitive"
+    (never called prior-dominated on a likelihood that was not measured). A posterior as wide as the prior
+    (spread 2.5 around 0 for a Normal(0, 2.5) mean on a 0/1 column) is prior-sensitive by construction."""
+    panel = small_panel([SimAttribute("x", levels=[0.0, 1.0], taste="fixed", mean=0.0)], n_persons=20)
+    scale = float(np.std(panel.X[..., 0][panel.available & panel.task_mask[:, :, None]]))
+    fit = fake_fit(panel, {"x": 0.0}, spread=2.5 / scale, draws=500, person_draws=False)
+    table = sensitivity_table(fit)
+    assert table["likelihood"].isna().all()
+    assert table.loc["taste_mean[x]", "prior"] >= 0.05
+    assert table.loc["taste_mean[x]", "diagnosis"] == "prior-sensitive"
+    assert "likelihood's share is unknown" in sensitivity_checks(table)[0].advice

@@ -231,7 +231,8 @@ def sensitivity_table(result: Any, *, delta: float = DELTA) -> pd.DataFrame:
     pandas.DataFrame
         Indexed by ``parameter`` (``taste_sd[asc:b]``...), with ``prior`` and ``likelihood`` (the sensitivities;
         ``likelihood`` is NaN when the fit stores no person draws), ``diagnosis`` (``"prior-dominated"``,
-        ``"prior-data conflict"`` or ``""``), ``pareto_k_prior``, ``pareto_k_likelihood``;
+        ``"prior-data conflict"``, ``"prior-sensitive"`` when there is no likelihood, or ``""``),
+        ``pareto_k_prior``, ``pareto_k_likelihood``;
         ``attrs`` hold ``threshold``, ``delta`` and ``k_threshold``.
     """
     draws = population_draws(result)
@@ -244,8 +245,9 @@ def sensitivity_table(result: Any, *, delta: float = DELTA) -> pd.DataFrame:
         lik, k_lik = np.full(draws.shape[1], np.nan), np.nan
     out = pd.DataFrame({"prior": prior, "likelihood": lik}, index=pd.Index(draws.columns, name="parameter"))
     t = SENSITIVITY_THRESHOLD
-    out["diagnosis"] = np.where(out["prior"] >= t,
-                                np.where(out["likelihood"] >= t, "prior-data conflict", "prior-dominated"), "")
+    lik_says = np.where(out["likelihood"].isna(), "prior-sensitive",  # no likelihood: cannot tell which
+                        np.where(out["likelihood"] >= t, "prior-data conflict", "prior-dominated"))
+    out["diagnosis"] = np.where(out["prior"] >= t, lik_says, "")
     out["pareto_k_prior"] = k_prior
     out["pareto_k_likelihood"] = k_lik
     n = draws.shape[0]
@@ -254,6 +256,9 @@ def sensitivity_table(result: Any, *, delta: float = DELTA) -> pd.DataFrame:
 
 
 _ADVICE = {
+    "prior-sensitive": ("prior-sensitive: the prior moves this number (prior sensitivity {p:.3f} >= {t}); the fit "
+                        "stores no person draws, so the likelihood's share is unknown. Widen the prior "
+                        "(model.prior_scale) or collect more persons."),
     "prior-dominated": ("prior-dominated: the prior, not the data, sets this number (prior sensitivity {p:.3f} >= "
                         "{t}, likelihood sensitivity {lk:.3f} < {t}). Widen the prior (model.prior_scale) or collect "
                         "more persons; read the number as the prior's."),
