@@ -27,6 +27,7 @@ from .._io import atomic_write_text
 from .._records import checks_frame, jsonable, overall_verdict
 from ..exceptions import FitError
 from ..inference.results import ChoiceFit, FitLike, as_fit, lend
+from ..model.build import implied_priors
 from .checks import (
     _REF_COMMON,
     _REF_DEPTH,
@@ -47,6 +48,8 @@ from .checks import (
     parameter_diagnostics,
 )
 
+from .sensitivity import SENSITIVITY_THRESHOLD, sensitivity_checks, sensitivity_table
+
 __all__ = ["Diagnostics", "diagnose", "format_verdict", "closing_line", "THRESHOLDS", "IN_SAMPLE_NOTE"]
 
 #: Every threshold of the checks, with its source (stored in ``diagnostics.json``).
@@ -58,6 +61,8 @@ THRESHOLDS = {
     "divergences": {"pass_at_most": 0, "reference": _REF_DIV},
     "tree_depth": {"pass_at_most": 0.0, "reference": _REF_DEPTH},
     "lognormal_sd": {"warn_below": LOG_SD_COLLAPSED, "warn_above": LOG_SD_LARGE, "reference": _REF_COMMON},
+    "prior_sensitivity": {"warn_at": SENSITIVITY_THRESHOLD, "reference": "Kallioinen, Paananen, Bürkner & Vehtari "
+                          "2024, Statistics and Computing 34:57"},
 }
 
 #: Why the in-sample reliability table is shown but never graded (docs/diagnostics.md, "Calibration").
@@ -103,6 +108,7 @@ class Diagnostics:
             self.checks = convergence_checks(result, table=self.parameters)
         self._predictive: dict[str, Any] | None = None
         self._loo: dict[str, Any] | None = None
+        self._sensitivity: dict[str, Any] | None = None
 
     # ------------------------------------------------------------------ the verdict
 
@@ -195,6 +201,19 @@ class Diagnostics:
             }
         return self._loo
 
+    @property
+    def sensitivity(self) -> dict[str, Any]:
+        """Power-scaling prior / likelihood sensitivity of the population parameters, with graded records.
+
+        Graded apart from the convergence checks: a prior-dominated parameter warns but does not change the
+        exit code (docs/diagnostics.md, "Prior sensitivity").
+        """
+        if self._sensitivity is None:
+            table = sensitivity_table(self.result)
+            self._sensitivity = {"table": table, "threshold": table.attrs["threshold"], "delta": table.attrs["delta"],
+                                 "checks": [c.to_dict() for c in sensitivity_checks(table)]}
+        return self._sensitivity
+
     # ------------------------------------------------------------------ the report
 
     def to_dict(self, *, full: bool = True) -> dict[str, Any]:
@@ -216,6 +235,12 @@ class Diagnostics:
             report["loo"] = loo
         if not self.result.has_person_draws:
             report["notes"].append("the fit stores no person draws: hit rate, PPC and LOO were skipped")
+        sensitivity = self.sensitivity if full else self._sensitivity
+        if sensitivity is not None:
+            report["sensitivity"] = sensitivity
+        if full:
+            report["priors"] = implied_priors(self.result.layout,
+                                              self.result.spec.model.prior_scale).to_dict(orient="records")
         report["exit_code"] = self.exit_code
         return jsonable(report)
 
@@ -373,6 +398,26 @@ def format_verdict(report: dict[str, Any]) -> str:
         for c in loo.get("checks", []):
             if c["verdict"] != "pass":
                 lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
+    priors = report.get("priors")
+    if priors:
+        lines += ["", "priors in the data's units (90 % prior intervals; docs/model.md):"]
+        for r in priors:
+            lines.append(f"  {r['parameter']}[{r['attribute']}]  {r['distribution']}  "
+                         f"{r['eti_low']:.3g} to {r['eti_high']:.3g}  ({r['what']})")
+    sens = report.get("sensitivity")
+    if sens:
+        flagged = [c for c in sens.get("checks", []) if c["verdict"] != "pass"]
+        lines += ["", f"prior sensitivity (power-scaling, threshold {sens['threshold']:g}): "
+                      f"{len(flagged)} of {len(sens.get('checks', []))} population parameters sensitive"]
+
+        def shown(v: Any) -> str:
+            return "n/a" if v is None else f"{v:.3f}"
+
+        for row in sens.get("table", []):
+            lines.append(f"  {row['parameter']:<{width}}  prior {shown(row.get('prior'))}  likelihood "
+                         f"{shown(row.get('likelihood'))}  {row.get('diagnosis', '')}")
+        for c in flagged:
+            lines.append(f"  {_MARK[c['verdict']]}  {c['subject']}: {c['advice']}")
     for note in report.get("notes", []):
         lines.append(f"note: {note}")
     if report.get("plots"):

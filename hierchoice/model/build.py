@@ -42,7 +42,8 @@ from ..spec import Spec, load_spec
 from .likelihood import RaggedDifferences, cell_differences, difference_data, task_loglik_graph
 from .transforms import TasteMap, latent_to_coefficient
 
-__all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD"]
+__all__ = ["ModelLayout", "model_layout", "build_model", "POPULATION_VARS", "PRIOR_SD", "PriorScales", "prior_scales",
+           "implied_priors"]
 
 #: Posterior variables that describe the population (the ones convergence checks must pass on).
 POPULATION_VARS = ("taste_mean", "taste_sd", "taste_corr", "covariate_effect")
@@ -52,12 +53,16 @@ PRIOR_SD = {
     "mean": 2.5,          # Normal(0, 2.5) on a standardised coefficient (common practice for logit slopes)
     "log_mean": 1.0,      # Normal(0, 1) on the log of a standardised lognormal coefficient
     "sd": 1.0,            # HalfNormal(1) on the SD of a standardised normal taste
+    "constant_sd": 5.0,   # HalfNormal(5) on the SD of a normal constant, on the logit scale (docs/model.md)
     "log_sd": 0.5,        # HalfNormal(0.5) on the SD of the log of a lognormal taste
     "covariate": 1.0,     # Normal(0, 1) per standardised covariate
     "lkj_eta": 2.0,       # LKJ(2): mild shrinkage of correlations towards 0
 }
 
 _UNIT_KINDS = ("dummy", "effects", "constant", "lagged_choice")
+
+#: Probability of the implied prior intervals of :func:`implied_priors`.
+PRIOR_INTERVAL = 0.90
 
 
 @dataclass(frozen=True)
@@ -137,6 +142,85 @@ class ModelLayout:
             "wtp_space": self.wtp_space,
             "price": None if self.price is None else self.names[self.price],
         }
+
+
+@dataclass(frozen=True)
+class PriorScales:
+    """The population priors of a layout, on the internal scale: the one place both samplers read them from.
+
+    ``mean_sd`` (attribute,): SD of the Normal(0, .) prior of each population mean (of the log for a lognormal
+    taste; on the reported constant for a constant); ``sd_sd`` (random,): scale of the HalfNormal prior of each
+    random taste's SD; ``covariate_sd``: SD of the Normal(0, .) prior of each standardised covariate effect;
+    ``lkj_eta``: the LKJ shape of the correlation matrix. Every scale is already multiplied by
+    ``model.prior_scale``.
+    """
+
+    mean_sd: np.ndarray
+    sd_sd: np.ndarray
+    covariate_sd: float
+    lkj_eta: float
+
+
+def prior_scales(layout: ModelLayout, prior_scale: float = 1.0) -> PriorScales:
+    """The priors of ``layout`` (:data:`PRIOR_SD` by taste kind, times ``prior_scale``).
+
+    A normal alternative-specific constant's SD gets ``PRIOR_SD["constant_sd"]`` (its internal scale is the
+    logit scale the user reads); every other random taste ``PRIOR_SD["sd"]`` (normal) or ``PRIOR_SD["log_sd"]``
+    (lognormal) on its standardised scale.
+    """
+    n_k = len(layout.terms)
+    mean_sd = np.array([PRIOR_SD["log_mean"] if layout.is_lognormal(k) else PRIOR_SD["mean"] for k in range(n_k)])
+    sd_sd = np.array([PRIOR_SD["log_sd"] if layout.is_lognormal(k)
+                      else PRIOR_SD["constant_sd"] if layout.terms[k].kind == "constant" else PRIOR_SD["sd"]
+                      for k in layout.random])
+    return PriorScales(mean_sd=mean_sd * prior_scale, sd_sd=sd_sd * prior_scale,
+                       covariate_sd=PRIOR_SD["covariate"] * prior_scale, lkj_eta=PRIOR_SD["lkj_eta"])
+
+
+def implied_priors(layout: ModelLayout, prior_scale: float = 1.0, prob: float = PRIOR_INTERVAL) -> Any:
+    """The priors of ``taste_mean`` and ``taste_sd`` in the user's units, with their equal-tailed intervals.
+
+    The internal priors (:func:`prior_scales`) mapped to the reported scale exactly as :func:`build_model`
+    reports the parameters: a normal or fixed taste's mean and SD are multiplied by
+    :meth:`ModelLayout.unit_factor`, a lognormal taste's mean of the log is shifted by
+    :meth:`ModelLayout.log_shift` (its SD of the log has no unit). The quantiles are those of the Normal and
+    HalfNormal distributions (scipy), not simulated.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per (attribute, parameter) with ``parameter`` in {``taste_mean``, ``taste_sd``},
+        ``distribution`` (e.g. ``Normal(0, 2.5)`` on the reported scale), ``eti_low`` / ``eti_high`` and
+        ``scale`` (what the numbers are: ``"utility per unit"``, ``"log of the coefficient"``...);
+        ``attrs["prob"] = prob``.
+    """
+    import pandas as pd
+    from scipy import stats
+
+    scales = prior_scales(layout, prior_scale)
+    lo, hi = (1 - prob) / 2, (1 + prob) / 2
+    rows = []
+    for k, term in enumerate(layout.terms):
+        logn = layout.is_lognormal(k)
+        unit = 1.0 if logn else layout.unit_factor(k)
+        centre = layout.log_shift(k) if logn else 0.0
+        sd = scales.mean_sd[k] * unit
+        wtp = layout.wtp_space and k != layout.price
+        noun = "constant" if term.kind == "constant" else "willingness to pay" if wtp else "coefficient"
+        what = "mean of the log of the coefficient" if logn else f"{noun} (mean across people)"
+        rows.append({"attribute": term.name, "parameter": "taste_mean", "what": what,
+                     "distribution": f"Normal({centre:.4g}, {sd:.4g})",
+                     "eti_low": centre + sd * stats.norm.ppf(lo), "eti_high": centre + sd * stats.norm.ppf(hi)})
+        if k in layout.random:
+            s = scales.sd_sd[layout.random.index(k)] * unit
+            rows.append({"attribute": term.name, "parameter": "taste_sd",
+                         "what": ("SD of the log of the coefficient" if logn
+                                  else f"SD of the {noun} across people"),
+                         "distribution": f"HalfNormal({s:.4g})",
+                         "eti_low": s * stats.halfnorm.ppf(lo), "eti_high": s * stats.halfnorm.ppf(hi)})
+    out = pd.DataFrame(rows, columns=["attribute", "parameter", "what", "distribution", "eti_low", "eti_high"])
+    out.attrs["prob"] = prob
+    return out
 
 
 def model_layout(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path | None = None) -> ModelLayout:
@@ -408,30 +492,29 @@ def build_model(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | Path 
         coords["covariate"] = list(layout.covariates)
         coords["shifted_attribute"] = layout.shifted_names
 
-    mean_sd = np.array([PRIOR_SD["log_mean"] if layout.is_lognormal(k) else PRIOR_SD["mean"] for k in range(n_k)])
-    sd_sd = np.array([PRIOR_SD["log_sd"] if layout.is_lognormal(k) else PRIOR_SD["sd"] for k in rnd])
+    priors = prior_scales(layout, ps)
 
     with pm.Model(coords=coords) as model:
-        mu_free = _free_means(layout, mean_sd * ps)
+        mu_free = _free_means(layout, priors.mean_sd)
         mu = _centred_constants(mu_free, layout) if layout.constant_centre is not None else mu_free
         # theta: the (person, attribute) latent tastes, one vectorised expression (a (1, attribute)
         # row while nothing varies by person); lognormal columns are exponentiated below
         theta = mu[None, :]
 
         if layout.shifted:
-            gamma = pm.Normal("gamma_std", 0.0, PRIOR_SD["covariate"] * ps, dims=("covariate", "shifted_attribute"))
+            gamma = pm.Normal("gamma_std", 0.0, priors.covariate_sd, dims=("covariate", "shifted_attribute"))
             z_std = pt.constant((panel.Z - layout.z_mean) / layout.z_scale)
             theta = theta + _into_columns(pt.dot(z_std, gamma), layout.shifted, n_k)
 
         if rnd:
             if layout.correlated:
                 chol, corr, _ = pm.LKJCholeskyCov(
-                    "chol_std", n=n_r, eta=PRIOR_SD["lkj_eta"],
-                    sd_dist=pm.HalfNormal.dist(sigma=sd_sd * ps, shape=n_r), compute_corr=True,
+                    "chol_std", n=n_r, eta=priors.lkj_eta,
+                    sd_dist=pm.HalfNormal.dist(sigma=priors.sd_sd, shape=n_r), compute_corr=True,
                 )
                 sd = pm.Deterministic("sd_std", pt.sqrt(pt.diag(chol @ chol.T)), dims="random_attribute")
             else:
-                sd = pm.HalfNormal("sd_std", sigma=sd_sd * ps, dims="random_attribute")
+                sd = pm.HalfNormal("sd_std", sigma=priors.sd_sd, dims="random_attribute")
             if layout.centred:
                 loc = theta[:, rnd] if layout.shifted else mu[rnd]
                 if layout.correlated:

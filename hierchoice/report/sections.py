@@ -23,6 +23,7 @@ from ..analysis.tastes import taste_shrinkage
 from ..analysis.wtp import coefficient_units, person_wtp, population_wtp, price_attribute, taste_units
 from ..exceptions import HierchoiceError
 from ..inference.results import ChoiceFit
+from ..model.build import implied_priors
 from .figures import (
     _caterpillar,
     _forest,
@@ -45,7 +46,7 @@ from .markup import (
 from .status import _normal_verdict
 
 __all__ = ["_cautions_section", "_convergence_section", "_fit_section", "_individual_section", "_job_section",
-           "_model_section", "_population_section", "_scenario_section", "_with_units", "_wtp_section"]
+           "_model_section", "_priors_section", "_population_section", "_scenario_section", "_with_units", "_wtp_section"]
 
 
 def _convergence_section(status: dict[str, Any], folder: Path) -> str:
@@ -266,6 +267,42 @@ def _model_section(result: ChoiceFit) -> str:
             + "".join(f"<div class='math'>{line}</div>" for line in lines)
             + _table(["term", "what it is", "taste across people"], rows)
             + f"<details><summary>The spec as fitted (TOML)</summary><pre>{_e(toml)}</pre></details>")
+
+
+def _priors_section(result: ChoiceFit, status: dict[str, Any]) -> str:
+    """The priors in the data's units, and how much each population parameter moves when the prior is scaled."""
+    priors = implied_priors(result.layout, result.spec.model.prior_scale)
+    prob = priors.attrs["prob"]
+    rows = [[r.attribute, r.parameter, r.what, r.distribution, f"{_num(r.eti_low)} – {_num(r.eti_high)}"]
+            for r in priors.itertuples()]
+    parts = [f"<p>The population priors, mapped to the data's units (each taste's unit is that of its attribute; "
+             f"model.prior_scale = {_num(result.spec.model.prior_scale)}). The interval holds {prob:.0%} of the "
+             "prior's mass: values far outside it are possible only if the data insist (see docs/model.md).</p>",
+             _table(["term", "parameter", "what", "prior (data's units)", f"{prob:.0%} prior interval"], rows,
+                    numeric=[4])]
+    sens = status.get("sensitivity")
+    if not isinstance(sens, dict) or not isinstance(sens.get("table"), list):
+        parts.append("<p>No prior-sensitivity check is in diagnostics.json for this fit (run "
+                     "<code>hierchoice check</code>).</p>")
+        return "".join(parts)
+    t = sens.get("threshold", 0.05)
+    rows = [[r.get("parameter", ""), _num(r.get("prior")), _num(r.get("likelihood")), r.get("diagnosis") or "—"]
+            for r in sens["table"] if isinstance(r, dict)]
+    parts.append("<h3>Prior sensitivity (power-scaling)</h3>"
+                 f"<p>How far each population parameter's posterior moves when the prior (or the likelihood) is "
+                 "raised to a power near 1, estimated by importance weighting without refitting (Kallioinen, "
+                 "Paananen, Bürkner &amp; Vehtari 2024, <i>Statistics and Computing</i> 34:57). A prior "
+                 f"sensitivity of {_num(t)} or more means the prior moves a reported number: "
+                 "<b>prior-dominated</b> when the data move it less than that, <b>prior-data conflict</b> when "
+                 "they move it too. Either way, widen the prior (model.prior_scale) or collect more persons "
+                 "before reading the number as the data's.</p>")
+    parts.append(_table(["parameter", "prior sensitivity", "likelihood sensitivity", "diagnosis"], rows,
+                        numeric=[1, 2]))
+    flagged = [c for c in sens.get("checks", []) if isinstance(c, dict) and c.get("verdict") != "pass"]
+    if flagged:
+        parts.append("<ul>" + "".join(f"<li><b>{_e(c.get('subject', ''))}</b>: {_e(c.get('advice', ''))}</li>"
+                                      for c in flagged) + "</ul>")
+    return "".join(parts)
 
 
 #: The unit of the population-tastes rows that are not in a term's units.

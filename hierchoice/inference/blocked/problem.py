@@ -12,7 +12,7 @@ import numpy as np
 
 from ...data.panel import ChoicePanel
 from ...exceptions import SpecError
-from ...model.build import PRIOR_SD, ModelLayout, model_layout
+from ...model.build import ModelLayout, model_layout, prior_scales
 from ...model.likelihood import RaggedDifferences, cell_differences
 from ...spec import Spec
 from .kernels import person_information, person_loglik
@@ -114,7 +114,7 @@ def blocked_problem(panel: ChoicePanel, spec: Spec) -> BlockedProblem:
     data = cell_differences(panel.cells, scale=layout.scale)
     n_k = len(layout.terms)
     rnd = np.array(layout.random, dtype=np.int64)
-    ps = spec.model.prior_scale
+    priors = prior_scales(layout, spec.model.prior_scale)  # the same priors as build_model, from the same function
     if layout.shifted:
         Z = np.ascontiguousarray((panel.Z - layout.z_mean) / layout.z_scale, dtype=float)
     else:
@@ -127,9 +127,8 @@ def blocked_problem(panel: ChoicePanel, spec: Spec) -> BlockedProblem:
         layout=layout, data=data, Z=Z, rnd=rnd,
         fixed=np.array(layout.fixed, dtype=np.int64), shifted=np.array(layout.shifted, dtype=np.int64),
         logn=lognormal[rnd], sign=np.array([layout.sign(k) for k in layout.random]),
-        mean_sd=np.where(lognormal, PRIOR_SD["log_mean"], PRIOR_SD["mean"]) * ps,
-        sd_sd=np.where(lognormal[rnd], PRIOR_SD["log_sd"], PRIOR_SD["sd"]) * ps,
-        gamma_sd=PRIOR_SD["covariate"] * ps, lkj_eta=PRIOR_SD["lkj_eta"], centre=centre, lin=lin,
+        mean_sd=priors.mean_sd, sd_sd=priors.sd_sd,
+        gamma_sd=priors.covariate_sd, lkj_eta=priors.lkj_eta, centre=centre, lin=lin,
         coef_sign=np.array([layout.sign(k) for k in range(n_k)]),
         conjugate=not layout.fixed and linear_map,
     )
