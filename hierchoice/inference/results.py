@@ -296,7 +296,8 @@ def load_fit(folder: str | Path) -> ChoiceFit:
         raise ArchiveError(f"Could not read {str(path)!r}: {type(err).__name__}: {err}") from None
     attrs = idata.posterior.attrs
     version = attrs.get("hierchoice_folder_format", 1)
-    if not isinstance(version, (int, np.integer)) or not 1 <= int(version) <= FOLDER_FORMAT:
+    version = int(version) if isinstance(version, (int, np.integer)) else version
+    if not isinstance(version, int) or not 1 <= version <= FOLDER_FORMAT:
         raise ArchiveError(f"{str(path)!r} is in results-folder format {version!r}, which this version of hierchoice "
                            f"(format {FOLDER_FORMAT}) cannot read: it was written by a newer hierchoice. Upgrade "
                            "hierchoice, or refit.")

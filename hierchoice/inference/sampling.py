@@ -230,6 +230,10 @@ def fit(
     spec = panel.spec if spec is None else load_spec(spec)
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
                               target_accept=target_accept, cores=cores, method=method).for_method(method)
+    if posterior_predictive and not spec.sampling.store_person_draws:
+        raise FitError("fit(posterior_predictive=True) replicates choices from the posterior person tastes, which "
+                       "sampling.store_person_draws = false does not keep; set it to true, or leave "
+                       "posterior_predictive off.")
     if method == "blocked":
         return _finish(_fit_blocked(panel, spec, progressbar=progressbar, client=client), posterior_predictive)
     if client is not None:
@@ -288,8 +292,6 @@ def _finish(result: ChoiceFit, posterior_predictive: bool) -> ChoiceFit:
         add_log_likelihood(result)
         if posterior_predictive:
             add_posterior_predictive(result)
-    elif posterior_predictive:
-        result.person_draws("fit(posterior_predictive=True)")  # the FitError that says what is missing
     result.info["postprocess_seconds"] = round(time.perf_counter() - t0, 3)
     return result
 
