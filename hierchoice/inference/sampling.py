@@ -2,9 +2,27 @@
 
 :func:`fit` builds the model (:func:`hierchoice.model.build_model`), samples it
 with the chosen backend (PyMC's own NUTS, nutpie, or numpyro through JAX) and
-returns a :class:`ChoiceFit`: the ArviZ ``InferenceData`` (posterior,
-sample_stats, observed_data, constant_data and, when person draws are kept,
-the task-level log_likelihood) with the panel and the spec it came from.
+returns a :class:`ChoiceFit` holding an ArviZ ``InferenceData`` that ArviZ uses whole:
+
+``posterior``
+    the reported variables, with ``chain`` and ``draw`` coordinates; the population
+    parameters ``taste_mean``, ``taste_sd``, ``taste_corr``, ``covariate_effect`` and, when
+    person draws are kept, ``person_taste`` (and ``person_wtp``) over ``person``;
+``observed_data``, ``log_likelihood``, ``posterior_predictive``
+    ``chosen`` on one dim ``obs``, one entry per real task, with coordinates ``obs_person``
+    and ``obs_task`` holding the user's person and task ids: the observed alternative's
+    position in ``attrs["alternatives"]``, its log-probability under each draw's person
+    tastes, and (``fit(..., posterior_predictive=True)`` or :func:`add_posterior_predictive`)
+    one replicated choice per draw;
+``sample_stats``, ``constant_data``
+    the sampler's per-draw statistics and the panel's arrays over (person, task, ...).
+
+So ``az.loo(fit.idata)``, ``az.compare({"a": fit_a.idata, "b": fit_b.idata})``,
+``az.plot_ppc(fit.idata)`` and ``az.loo_pit(fit.idata, y="chosen")`` work as they are.
+The person tastes stay in the posterior, where every analysis reads them; ArviZ's summary
+of the population alone is ``az.summary(fit.idata, var_names=["^taste_", "^covariate_effect$"],
+filter_vars="regex")`` (one row per population parameter; without ``var_names`` it also
+summarises every person's tastes: B1, 4,000 rows more).
 """
 
 from __future__ import annotations
