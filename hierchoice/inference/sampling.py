@@ -403,9 +403,8 @@ def _tidy_idata(idata: Any, panel: ChoicePanel, keep: list[str]) -> Any:
     groups: dict[str, Any] = {"posterior": post}
     if "sample_stats" in idata.groups():
         groups["sample_stats"] = idata.sample_stats
-    for name in list(groups):
-        ds = groups[name]
-        groups[name] = ds.assign_coords(chain=np.arange(ds.sizes["chain"]), draw=np.arange(ds.sizes["draw"]))
+    for name, ds in list(groups.items()):
+        groups[name] = ds.assign_coords({d: np.arange(ds.sizes[d]) for d in ("chain", "draw") if d in ds.dims})
     ds = panel.to_xarray()
     p_idx, t_idx, coords = _obs_index(panel)
     chosen = xr.DataArray(panel.chosen[p_idx, t_idx].astype(np.int64), dims=("obs",), coords=coords, name="chosen",
