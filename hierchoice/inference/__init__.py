@@ -12,12 +12,13 @@ from .results import POSTERIOR_FILE, ChoiceFit, load_fit, population_summary, sa
 from .sampling import (
     REPORTED_VARS,
     add_log_likelihood,
+    add_posterior_predictive,
     fit,
     resolve_backend,
     task_log_likelihood,
 )
 
 __all__ = [
-    "POSTERIOR_FILE", "REPORTED_VARS", "ChoiceFit", "add_log_likelihood", "fit", "load_fit", "population_summary",
+    "POSTERIOR_FILE", "REPORTED_VARS", "ChoiceFit", "add_log_likelihood", "add_posterior_predictive", "fit", "load_fit", "population_summary",
     "resolve_backend", "save_fit", "task_log_likelihood",
 ]

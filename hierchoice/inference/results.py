@@ -6,11 +6,16 @@
 A results folder holds
 
 ``posterior.nc``
-    ArviZ InferenceData as NetCDF: posterior (reported variables only),
-    sample_stats, observed_data, constant_data (the panel arrays). The task-level
-    log_likelihood is not stored when person draws are (it is rebuilt from them
-    by :func:`hierchoice.diagnostics.loo.task_loo`); its attributes carry the
-    spec (TOML), the data summary, the panel's terms and the fit info (JSON).
+    ArviZ InferenceData as NetCDF (one HDF5 group per InferenceData group), format
+    :data:`FOLDER_FORMAT`: posterior (reported variables only; person tastes as
+    float32), sample_stats, observed_data (``chosen`` over ``obs``, one per real task),
+    constant_data (the panel arrays) and, when the fit has one, posterior_predictive;
+    every variable chunked and compressed (see :func:`save_fit`). The task-level
+    log_likelihood is not stored when person draws are (it is rebuilt from them by
+    :func:`hierchoice.diagnostics.loo.task_loo`); the posterior's attributes carry the
+    folder format, the spec (TOML), the data summary, the panel's terms and the fit
+    info (JSON). :func:`load_fit` also reads format 1 (before compaction) and refuses
+    a newer format, naming the file.
 ``spec.toml``
     The spec the fit used (sampling options as run).
 ``fit.log``
@@ -40,7 +45,7 @@ from ..model.build import ModelLayout, model_layout
 from ..spec import Spec
 
 __all__ = ["APPROXIMATE_CAUTION", "ChoiceFit", "FitLike", "as_fit", "lend", "population_summary", "thin_draws", "save_fit",
-           "load_fit", "POSTERIOR_FILE"]
+           "load_fit", "POSTERIOR_FILE", "FOLDER_FORMAT"]
 
 POSTERIOR_FILE = "posterior.nc"
 
@@ -233,21 +238,57 @@ def _attrs_for(result: ChoiceFit) -> dict[str, str]:
     }
 
 
-def save_fit(result: ChoiceFit, out: str | Path, *, overwrite: bool = True, extra: dict[str, Any] | None = None) -> Path:
-    """Write ``result`` into the folder ``out`` (atomically; see the module docstring)."""
-    import arviz as az
+#: The layout of ``posterior.nc`` this version writes (attribute ``hierchoice_folder_format`` of the posterior).
+#: 1 (no attribute): float64, uncompressed, ``observed_data.chosen`` over (person, task); still read.
+#: 2: person draws as float32, every variable chunked and compressed, ``observed_data.chosen`` over ``obs``.
+FOLDER_FORMAT = 2
+#: Posterior variables stored as float32 (see :func:`save_fit`).
+FLOAT32_VARS = ("person_taste", "person_wtp")
+_DRAWS_PER_CHUNK = 100
 
+
+def _encoding(ds: xr.Dataset, group: str) -> dict[str, dict[str, Any]]:
+    """Compression (gzip level 1 after the byte shuffle, the cheapest that keeps most of the gain) and chunks of
+    at most :data:`_DRAWS_PER_CHUNK` draws (one chain each) for every array variable; float32 where it is safe."""
+    enc: dict[str, dict[str, Any]] = {}
+    for name, da in ds.data_vars.items():
+        if da.ndim == 0 or da.dtype.kind not in "biuf":
+            continue
+        chunks = tuple(1 if d == "chain" else min(n, _DRAWS_PER_CHUNK) if d == "draw" else n
+                       for d, n in zip(da.dims, da.shape))
+        enc[name] = {"zlib": True, "complevel": 1, "shuffle": True, "chunksizes": chunks}
+        if group == "posterior" and name in FLOAT32_VARS and da.dtype == np.float64:
+            enc[name]["dtype"] = "float32"
+    return enc
+
+
+def save_fit(result: ChoiceFit, out: str | Path, *, overwrite: bool = True, extra: dict[str, Any] | None = None) -> Path:
+    """Write ``result`` into the folder ``out`` (atomically; see the module docstring).
+
+    What is compact, and why it is safe:
+
+    * the task-level log-likelihood (draws x tasks) is not stored: it is a function of the person tastes
+      and the data, both stored, and :func:`hierchoice.diagnostics.loo.task_loo` rebuilds it;
+    * the person tastes (and WTP) are stored as float32. Its relative rounding error, 2^-24 = 6e-8, is
+      about 10^5 times below the Monte Carlo error of any posterior summary of them (a standard error of at
+      least 1 % of the posterior SD with fewer than 10,000 effective draws), so tastes, WTP, shares and LOO
+      agree with the in-memory fit to far better than their Monte Carlo error (LOO to 1e-4 relative:
+      ``docs/performance.md``). Population parameters, sampler statistics and the data stay float64;
+    * every variable is compressed (gzip after the byte shuffle) in chunks of at most
+      :data:`_DRAWS_PER_CHUNK` draws of one chain.
+    """
     out = Path(out)
     idata = result.idata
-    attrs = _attrs_for(result)
-    if "log_likelihood" in idata.groups() and result.has_person_draws:
-        # a function of the person tastes and the data (both stored): rebuilt when needed
-        # (hierchoice.diagnostics.loo.task_loo); storing it would more than double the file
-        idata = az.InferenceData(**{g: getattr(idata, g) for g in idata.groups() if g != "log_likelihood"})
+    attrs = {**_attrs_for(result), "hierchoice_folder_format": FOLDER_FORMAT}
+    groups = [g for g in idata.groups() if not (g == "log_likelihood" and result.has_person_draws)]
     with atomic_dir(out, kind="results", overwrite=overwrite) as tmp:
-        for group in idata.groups():
-            getattr(idata, group).attrs.update(attrs if group == "posterior" else {})
-        idata.to_netcdf(str(tmp / POSTERIOR_FILE), engine="h5netcdf")
+        path = tmp / POSTERIOR_FILE
+        for i, group in enumerate(groups):
+            ds = getattr(idata, group).copy()
+            if group == "posterior":
+                ds.attrs = {**ds.attrs, **attrs}
+            ds.to_netcdf(str(path), mode="w" if i == 0 else "a", group=group, engine="h5netcdf",
+                         encoding=_encoding(ds, group))
         (tmp / "spec.toml").write_text(result.spec.to_toml(), encoding="utf-8")
         (tmp / "fit.log").write_text(_fit_log(result), encoding="utf-8")
         for name, text in (extra or {}).items():
@@ -275,6 +316,12 @@ def load_fit(folder: str | Path) -> ChoiceFit:
     except Exception as err:  # a damaged or foreign file
         raise ArchiveError(f"Could not read {str(path)!r}: {type(err).__name__}: {err}") from None
     attrs = idata.posterior.attrs
+    version = attrs.get("hierchoice_folder_format", 1)
+    version = int(version) if isinstance(version, (int, np.integer)) else version
+    if not isinstance(version, int) or not 1 <= version <= FOLDER_FORMAT:
+        raise ArchiveError(f"{str(path)!r} is in results-folder format {version!r}, which this version of hierchoice "
+                           f"(format {FOLDER_FORMAT}) cannot read: it was written by a newer hierchoice. Upgrade "
+                           "hierchoice, or refit.")
     try:
         import tomllib
 
@@ -297,11 +344,16 @@ def load_fit(folder: str | Path) -> ChoiceFit:
         notes=summary_d["notes"],
     )
     task_mask = const["task_mask"].values.astype(bool)
+    if obs["chosen"].dims == ("person", "task"):  # format 1
+        chosen = obs["chosen"].values.astype(np.int64)
+    else:  # format 2: over the real tasks in (person, task) order
+        chosen = np.full(task_mask.shape, -1, dtype=np.int64)
+        chosen[task_mask] = obs["chosen"].values
     task_ids = const["task_id"].values.astype(object)
     task_ids[~task_mask] = None
     panel = ChoicePanel(
         X=const["x"].values, available=const["available"].values.astype(bool), task_mask=task_mask,
-        chosen=obs["chosen"].values.astype(np.int64), task_ids=task_ids,
+        chosen=chosen, task_ids=task_ids,
         lag_missing=const["lag_missing"].values.astype(bool),
         Z=const["z"].values if "z" in const else np.zeros((const.sizes["person"], 0)),
         persons=const["person"].values.tolist(), alternatives=[str(a) for a in const["alternative"].values],

@@ -2,9 +2,27 @@
 
 :func:`fit` builds the model (:func:`hierchoice.model.build_model`), samples it
 with the chosen backend (PyMC's own NUTS, nutpie, or numpyro through JAX) and
-returns a :class:`ChoiceFit`: the ArviZ ``InferenceData`` (posterior,
-sample_stats, observed_data, constant_data and, when person draws are kept,
-the task-level log_likelihood) with the panel and the spec it came from.
+returns a :class:`ChoiceFit` holding an ArviZ ``InferenceData`` that ArviZ uses whole:
+
+``posterior``
+    the reported variables, with ``chain`` and ``draw`` coordinates; the population
+    parameters ``taste_mean``, ``taste_sd``, ``taste_corr``, ``covariate_effect`` and, when
+    person draws are kept, ``person_taste`` (and ``person_wtp``) over ``person``;
+``observed_data``, ``log_likelihood``, ``posterior_predictive``
+    ``chosen`` on one dim ``obs``, one entry per real task, with coordinates ``obs_person``
+    and ``obs_task`` holding the user's person and task ids: the observed alternative's
+    position in ``attrs["alternatives"]``, its log-probability under each draw's person
+    tastes, and (``fit(..., posterior_predictive=True)`` or :func:`add_posterior_predictive`)
+    one replicated choice per draw;
+``sample_stats``, ``constant_data``
+    the sampler's per-draw statistics and the panel's arrays over (person, task, ...).
+
+So ``az.loo(fit.idata)``, ``az.compare({"a": fit_a.idata, "b": fit_b.idata})``,
+``az.plot_ppc(fit.idata)`` and ``az.loo_pit(fit.idata, y="chosen")`` work as they are.
+The person tastes stay in the posterior, where every analysis reads them; ArviZ's summary
+of the population alone is ``az.summary(fit.idata, var_names=["^taste_", "^covariate_effect$"],
+filter_vars="regex")`` (one row per population parameter; without ``var_names`` it also
+summarises every person's tastes: B1, 4,000 rows more).
 """
 
 from __future__ import annotations
@@ -28,9 +46,10 @@ from ..exceptions import DataError, FitError, SpecError
 from ..model.build import POPULATION_VARS, build_model, model_layout
 from ..model.likelihood import difference_data, task_loglik_numpy
 from ..spec import Spec, load_spec
-from .results import ChoiceFit
+from .results import ChoiceFit, thin_draws
 
-__all__ = ["fit", "as_panel", "choose_method", "AUTO_BLOCKED_PERSONS", "resolve_backend", "task_log_likelihood", "add_log_likelihood", "REPORTED_VARS"]
+__all__ = ["fit", "as_panel", "choose_method", "AUTO_BLOCKED_PERSONS", "resolve_backend", "task_log_likelihood",
+           "add_log_likelihood", "replicate_choices", "add_posterior_predictive", "REPORTED_VARS"]
 
 log = logging.getLogger("hierchoice")
 
@@ -182,6 +201,7 @@ def fit(
     advi_iterations: int = 15_000,
     person_batch: int | str | None = "auto",
     client: Any = None,
+    posterior_predictive: bool = False,
 ) -> ChoiceFit:
     """Sample the panel mixed logit of ``panel`` with NUTS (or approximate it with ADVI).
 
@@ -252,8 +272,12 @@ def fit(
     spec = panel.spec if spec is None else load_spec(spec)
     spec = spec.with_sampling(draws=draws, tune=tune, chains=chains, seed=seed, backend=backend,
                               target_accept=target_accept, cores=cores, method=method).for_method(method)
+    if posterior_predictive and not spec.sampling.store_person_draws:
+        raise FitError("fit(posterior_predictive=True) replicates choices from the posterior person tastes, which "
+                       "sampling.store_person_draws = false does not keep; set it to true, or leave "
+                       "posterior_predictive off.")
     if method == "blocked":
-        return _fit_blocked(panel, spec, progressbar=progressbar, client=client)
+        return _finish(_fit_blocked(panel, spec, progressbar=progressbar, client=client), posterior_predictive)
     if client is not None:
         raise SpecError(f"a Dask cluster (client=, fit --scheduler) serves the blocked sampler only, and this fit's "
                         f"method is {method!r}: ask for method='blocked' (fit --method blocked), or drop the cluster.")
@@ -263,6 +287,7 @@ def fit(
     layout = model_layout(panel, spec)
     t0 = time.perf_counter()
     model = build_model(panel, spec, person_batch=batch, layout=layout)
+    build_seconds = time.perf_counter() - t0
     keep = [v for v in REPORTED_VARS if v in model.named_vars]
     if not s.store_person_draws:
         keep = [v for v in keep if v not in ("person_taste", "person_wtp")]
@@ -289,6 +314,8 @@ def fit(
         "draws": s.draws, "tune": s.tune, "chains": 1 if method == "advi" else s.chains, "seed": s.seed,
         "target_accept": s.target_accept,
         "wall_seconds": round(wall, 3),
+        # model build; compile + tuning + draws (the profile of a whole `fit` process: docs/performance.md)
+        "build_seconds": round(build_seconds, 3), "sampling_seconds": round(wall - build_seconds, 3),
         "approximate": method == "advi",
         "method": "ADVI (mean-field)" if method == "advi" else "NUTS",
         # when the fit finished, in UTC (the report's "fitted" line)
@@ -297,9 +324,17 @@ def fit(
     if method == "advi":
         info["advi_iterations"] = advi_iterations
         info["person_batch"] = batch
-    result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
+    return _finish(ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info), posterior_predictive)
+
+
+def _finish(result: ChoiceFit, posterior_predictive: bool) -> ChoiceFit:
+    """The per-task groups of a fit with person draws: log-likelihood always, replicated choices on request."""
+    t0 = time.perf_counter()
     if result.has_person_draws:
         add_log_likelihood(result)
+        if posterior_predictive:
+            add_posterior_predictive(result)
+    result.info["postprocess_seconds"] = round(time.perf_counter() - t0, 3)
     return result
 
 
@@ -360,10 +395,7 @@ def _fit_blocked(panel: ChoicePanel, spec: Spec, *, progressbar: bool, client: A
     info = {"backend": "blocked", "draws": s.draws, "tune": s.tune, "chains": s.chains, "seed": s.seed,
             "wall_seconds": round(wall, 3), "approximate": False, "method": METHOD_NAME,
             "created_at": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")}
-    result = ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
-    if result.has_person_draws:
-        add_log_likelihood(result)
-    return result
+    return ChoiceFit(idata=idata, panel=panel, spec=spec, layout=layout, info=info)
 
 
 def _dask_client(client: Any) -> Any:
@@ -382,33 +414,63 @@ def _dask_client(client: Any) -> Any:
         raise SpecError(f"cannot reach the Dask scheduler at {client!r}: {exc}") from exc
 
 
+def _obs_index(panel: ChoicePanel) -> tuple[np.ndarray, np.ndarray, dict[str, Any]]:
+    """The real tasks in (person, task) order: their positions and the ``obs`` coordinates naming them.
+
+    Every per-task quantity of a fit (observed choice, log-likelihood, replicated choices) lies on this one
+    ``obs`` dim, with coordinates ``obs_person`` and ``obs_task`` holding the user's person and task ids.
+    """
+    p_idx, t_idx = np.nonzero(panel.task_mask)
+    coords = {"obs": np.arange(p_idx.size),
+              "obs_person": ("obs", np.array([str(v) for v in np.asarray(panel.persons, dtype=object)[p_idx]])),
+              "obs_task": ("obs", np.array([str(v) for v in panel.task_ids[p_idx, t_idx]]))}
+    return p_idx, t_idx, coords
+
+
 def _tidy_idata(idata: Any, panel: ChoicePanel, keep: list[str]) -> Any:
-    """Keep reported variables only; add observed_data and constant_data groups."""
+    """Keep reported variables only, with chain/draw coordinates; add observed_data and constant_data groups.
+
+    ``observed_data.chosen`` is the chosen alternative's position in ``alternatives`` (attribute
+    ``alternatives``) over ``obs``, the dim of the log-likelihood and of replicated choices, so ArviZ
+    pairs them; ``constant_data`` holds the panel's (person, task, ...) arrays.
+    """
     import arviz as az
 
     post = idata.posterior[[v for v in keep if v in idata.posterior]]
     groups: dict[str, Any] = {"posterior": post}
     if "sample_stats" in idata.groups():
         groups["sample_stats"] = idata.sample_stats
+    for name, ds in list(groups.items()):
+        groups[name] = ds.assign_coords({d: np.arange(ds.sizes[d]) for d in ("chain", "draw") if d in ds.dims})
     ds = panel.to_xarray()
-    groups["observed_data"] = xr.Dataset({"chosen": ds["chosen"]})
-    const = ds.drop_vars(["chosen"])
-    groups["constant_data"] = const
+    p_idx, t_idx, coords = _obs_index(panel)
+    chosen = xr.DataArray(panel.chosen[p_idx, t_idx].astype(np.int64), dims=("obs",), coords=coords, name="chosen",
+                          attrs={"alternatives": [str(a) for a in panel.alternatives]})
+    groups["observed_data"] = xr.Dataset({"chosen": chosen})
+    groups["constant_data"] = ds.drop_vars(["chosen"])
     return az.InferenceData(**groups)
+
+
+def _person_draws(result: ChoiceFit, draws: xr.DataArray | None, max_draws: int | None = None) -> xr.DataArray:
+    taste = result.posterior["person_taste"] if draws is None else draws
+    return thin_draws(taste, max_draws).transpose("chain", "draw", "person", "attribute")
 
 
 def task_log_likelihood(result: ChoiceFit, draws: xr.DataArray | None = None) -> xr.DataArray:
     """Pointwise log-likelihood of every real task under each posterior draw of the person tastes.
 
     Returns a DataArray with dims (chain, draw, obs), one ``obs`` per task, with
-    coordinates ``obs_person`` and ``obs_task`` naming the person and task id.
+    coordinates ``obs_person`` and ``obs_task`` naming the person and task id (the
+    dims and coordinates of ``observed_data.chosen``).
+
+    A results folder does not store it: it is a function of the stored person tastes and the data, and
+    rebuilding it costs less than reading it (B1, 1,000 draws x 10,000 tasks: ``docs/performance.md``).
     """
     panel = result.panel
-    taste = result.posterior["person_taste"] if draws is None else draws
+    taste = _person_draws(result, draws)
     data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen)
-    mask = panel.task_mask
-    p_idx, t_idx = np.nonzero(mask)
-    values = taste.transpose("chain", "draw", "person", "attribute").values
+    p_idx, t_idx, coords = _obs_index(panel)
+    values = taste.values
     n_c, n_d = values.shape[:2]
     out = np.empty((n_c, n_d, p_idx.size))
     step = max(1, int(2e7 // max(1, data.D.size)))
@@ -416,18 +478,56 @@ def task_log_likelihood(result: ChoiceFit, draws: xr.DataArray | None = None) ->
         for d0 in range(0, n_d, step):
             ll = task_loglik_numpy(data, values[c, d0 : d0 + step])  # (d, P, T)
             out[c, d0 : d0 + step] = ll[:, p_idx, t_idx]
-    obs_task = np.array([str(v) for v in panel.task_ids[p_idx, t_idx]])
-    return xr.DataArray(
-        out, dims=("chain", "draw", "obs"),
-        coords={"chain": taste["chain"].values, "draw": taste["draw"].values,
-                "obs_person": ("obs", np.asarray(panel.persons, dtype=object)[p_idx]),
-                "obs_task": ("obs", obs_task)},
-        name="chosen",
-    )
+    return xr.DataArray(out, dims=("chain", "draw", "obs"),
+                        coords={"chain": taste["chain"].values, "draw": taste["draw"].values, **coords}, name="chosen")
 
 
 def add_log_likelihood(result: ChoiceFit) -> None:
     """Add the task-level log_likelihood group (needs person draws)."""
     ll = task_log_likelihood(result)
-    ll = ll.assign_coords(obs_person=ll["obs_person"].astype(str))
+    if "log_likelihood" in result.idata.groups():
+        del result.idata["log_likelihood"]
     result.idata.add_groups({"log_likelihood": xr.Dataset({"chosen": ll})})
+
+
+def replicate_choices(result: ChoiceFit, *, seed: int | None = None, max_draws: int | None = None) -> xr.DataArray:
+    """One replicated choice per real task and posterior draw: the posterior predictive of ``chosen``.
+
+    Each draw's person tastes give the logit probabilities of every available alternative
+    (:func:`hierchoice.model.likelihood.choice_probabilities`); one alternative is drawn from them by
+    inverting the cumulative probabilities with a uniform number. The result has the dims and coordinates
+    of ``observed_data.chosen``: (chain, draw, obs), the chosen alternative's position, as ``int8`` when
+    there are fewer than 128 alternatives. Cost: memory chains x draws x tasks bytes (B1, 2 x 500 draws x
+    10,000 tasks: 10 MB) and the time of one pass of the choice probabilities over the draws
+    (``docs/performance.md``).
+    """
+    from ..model.likelihood import choice_probabilities
+
+    panel = result.panel
+    taste = _person_draws(result, None, max_draws)
+    p_idx, t_idx, coords = _obs_index(panel)
+    values = taste.values
+    n_c, n_d = values.shape[:2]
+    dtype = np.int8 if len(panel.alternatives) < 128 else np.int64
+    out = np.empty((n_c, n_d, p_idx.size), dtype=dtype)
+    rng = np.random.default_rng(result.info.get("seed") if seed is None else seed)
+    step = max(1, int(2e7 // max(1, panel.X.size)))
+    for c in range(n_c):
+        for d0 in range(0, n_d, step):
+            prob = choice_probabilities(panel.X, panel.available, values[c, d0 : d0 + step])[:, p_idx, t_idx]
+            cum = np.cumsum(prob, axis=-1)
+            u = rng.random(cum.shape[:-1] + (1,)) * cum[..., -1:]
+            out[c, d0 : d0 + step] = np.minimum((cum < u).sum(axis=-1), prob.shape[-1] - 1)
+    return xr.DataArray(out, dims=("chain", "draw", "obs"),
+                        coords={"chain": taste["chain"].values, "draw": taste["draw"].values, **coords}, name="chosen",
+                        attrs={"alternatives": [str(a) for a in panel.alternatives]})
+
+
+def add_posterior_predictive(result: ChoiceFit, *, seed: int | None = None, max_draws: int | None = None) -> None:
+    """Add a ``posterior_predictive`` group (``chosen``, see :func:`replicate_choices`) for ArviZ's
+    ``plot_ppc`` and ``loo_pit``; a results folder stores it when present. Needs person draws."""
+    result.person_draws("the posterior predictive of the choices")
+    rep = replicate_choices(result, seed=seed, max_draws=max_draws)
+    if "posterior_predictive" in result.idata.groups():
+        del result.idata["posterior_predictive"]
+    result.idata.add_groups({"posterior_predictive": xr.Dataset({"chosen": rep})})
