@@ -70,7 +70,7 @@ from .._records import Check
 from ..exceptions import FitError, SpecError, first_few
 from ..inference.results import thin_draws
 from ..model.build import POPULATION_VARS
-from ..model.likelihood import DifferenceData, difference_data, task_loglik_numpy
+from ..model.likelihood import RaggedDifferences, cell_differences, person_loglik_cells
 from ..model.transforms import latent_to_coefficient
 
 __all__ = ["PERSON_LOGLIK", "PARETO_K_UNUSABLE", "task_loo", "person_log_marginal", "person_loo", "pareto_k_checks",
@@ -153,18 +153,19 @@ def _population(result: Any, post: Any) -> _Population:
     return _Population(base, sd.reshape(n_all, n_r)[:, :, None] * chol)
 
 
-def _persons(data: DifferenceData, sl: slice) -> DifferenceData:
-    return DifferenceData(D=data.D[:, sl], mask=data.mask[sl], n_tasks=data.n_tasks, n_others=data.n_others)
+def _cells_per_person(data: RaggedDifferences) -> int:
+    """The mean number of real cells of a person (block sizes below)."""
+    return max(1, data.n_cells // max(1, data.n_persons))
 
 
-def _loglik(data: DifferenceData, layout: Any, base: np.ndarray, u: np.ndarray) -> np.ndarray:
+def _loglik(data: RaggedDifferences, layout: Any, base: np.ndarray, u: np.ndarray) -> np.ndarray:
     """Person log-likelihood with the random latent tastes set to ``u`` (..., P, R); ``base`` (..., P, K)."""
     theta = np.array(np.broadcast_to(base, u.shape[:-1] + base.shape[-1:]))
     theta[..., list(layout.random)] = u
-    return task_loglik_numpy(data, latent_to_coefficient(theta, layout.taste_map)).sum(axis=-1)
+    return person_loglik_cells(data, latent_to_coefficient(theta, layout.taste_map))
 
 
-def _loglik_derivatives(data: DifferenceData, layout: Any, base: np.ndarray,
+def _loglik_derivatives(data: RaggedDifferences, layout: Any, base: np.ndarray,
                         u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Value (P,), gradient (P, R) and Hessian (P, R, R) of the person log-likelihood in ``u`` (P, R).
 
@@ -177,10 +178,10 @@ def _loglik_derivatives(data: DifferenceData, layout: Any, base: np.ndarray,
     offsets += [a * eye[i] + b * eye[j] for i, j in pairs for a, b in ((1, 1), (1, -1), (-1, 1), (-1, -1))]
     offs = np.array(offsets)  # (M, R)
     vals = np.empty((len(offs), n_p))
-    block = max(1, _BLOCK_CELLS // max(1, len(offs) * data.D.shape[2]))
+    block = max(1, _BLOCK_CELLS // max(1, len(offs) * _cells_per_person(data)))
     for p0 in range(0, n_p, block):
         sl = slice(p0, min(p0 + block, n_p))
-        vals[:, sl] = _loglik(_persons(data, sl), layout, base[sl], u[None, sl] + offs[:, None, :])
+        vals[:, sl] = _loglik(data.persons(sl), layout, base[sl], u[None, sl] + offs[:, None, :])
     f0, plus, minus = vals[0], vals[1 : 1 + n_r], vals[1 + n_r : 1 + 2 * n_r]
     grad = ((plus - minus) / (2 * _FD_STEP)).T
     hess = np.zeros((n_p, n_r, n_r))
@@ -197,7 +198,7 @@ def _psd(a: np.ndarray) -> np.ndarray:
     return np.einsum("...ij,...j,...kj->...ik", v, np.clip(w, 0.0, None), v)
 
 
-def _likelihood_laplace(data: DifferenceData, layout: Any, pop: _Population) -> tuple[np.ndarray, np.ndarray]:
+def _likelihood_laplace(data: RaggedDifferences, layout: Any, pop: _Population) -> tuple[np.ndarray, np.ndarray]:
     r"""A Gaussian approximation of each person's likelihood in the random latent tastes.
 
     Newton's method (step halving) finds the mode :math:`u^*_n` of :math:`\ell_n(u) + \log N(u; \bar m_n,
@@ -275,13 +276,13 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
     pop = _population(result, post)
     n_c, n_d = post.sizes["chain"], post.sizes["draw"]
     n_all, n_p = pop.base.shape[:2]
-    data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen)
+    data = cell_differences(panel.cells)
     out = np.empty((n_all, n_p))
     se = np.zeros((n_all, n_p))
     bar = Progress(label, n_all, enabled=want_progress(progressbar), unit="posterior draws")
     with bar:
         if pop.cov_chol is None:  # no random taste: the likelihood itself, exact
-            step = max(1, _BLOCK_CELLS // max(1, data.D.shape[1] * data.D.shape[2]))
+            step = max(1, _BLOCK_CELLS // max(1, data.n_cells))
             for d0 in range(0, n_all, step):
                 sl = slice(d0, min(d0 + step, n_all))
                 out[sl] = _loglik(data, layout, pop.base[sl], np.zeros(pop.base[sl].shape[:2] + (0,)))
@@ -289,7 +290,7 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
         else:
             lin, lam = _likelihood_laplace(data, layout, pop)
             rng = np.random.default_rng(seed)
-            step = max(1, _BLOCK_CELLS // max(1, n_sim * data.D.shape[1] * data.D.shape[2]))
+            step = max(1, _BLOCK_CELLS // max(1, n_sim * data.n_cells))
             for d0 in range(0, n_all, step):
                 sl = slice(d0, min(d0 + step, n_all))
                 lw = _importance_log_weights(data, layout, pop.base[sl], pop.cov_chol[sl], lin, lam, n_sim, rng)
@@ -307,7 +308,7 @@ def person_log_marginal(result: Any, *, n_sim: int = 200, max_draws: int | None 
     )
 
 
-def _importance_log_weights(data: DifferenceData, layout: Any, base: np.ndarray, cov_chol: np.ndarray,
+def _importance_log_weights(data: RaggedDifferences, layout: Any, base: np.ndarray, cov_chol: np.ndarray,
                             lin: np.ndarray, lam: np.ndarray, n_sim: int, rng: np.random.Generator) -> np.ndarray:
     r"""Log importance weights (m, S, P) of the marginal likelihood at ``m`` posterior draws.
 

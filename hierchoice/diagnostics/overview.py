@@ -47,7 +47,6 @@ from .checks import (
     format_check_value,
     parameter_diagnostics,
 )
-
 from .sensitivity import SENSITIVITY_THRESHOLD, sensitivity_checks, sensitivity_table
 
 __all__ = ["Diagnostics", "diagnose", "format_verdict", "closing_line", "THRESHOLDS", "IN_SAMPLE_NOTE"]

@@ -47,7 +47,7 @@ from .._display import Progress, html_table, status, want_progress
 from ..data.panel import ChoicePanel
 from ..exceptions import DataError, SpecError, first_few
 from ..inference.results import thin_draws
-from ..model.likelihood import choice_probabilities, difference_data, task_loglik_numpy
+from ..model.likelihood import cell_differences, choice_probabilities, task_loglik_cells
 from ..spec import Spec, load_spec
 
 __all__ = [
@@ -499,17 +499,15 @@ def score_tasks(result: Any, panel: ChoicePanel, *, max_draws: int | None = None
     from scipy.special import logsumexp
 
     betas = taste_draws(result, panel, max_draws=max_draws)
-    data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen)
-    step = _block(panel)
-    parts = [task_loglik_numpy(data, betas[s0 : s0 + step]) for s0 in range(0, betas.shape[0], step)]
-    ll = np.concatenate(parts, axis=0)  # (S, P, T)
+    cells = panel.cells  # tasks in np.nonzero(task_mask)'s order
+    ll = task_loglik_cells(cell_differences(cells), betas)  # (S, task), linear in the real cells
     lpd = logsumexp(ll, axis=0) - np.log(ll.shape[0])
     hits = _task_hits(_mean_probabilities(panel, betas), panel)
-    p_idx, t_idx = np.nonzero(panel.task_mask)
+    p_idx, t_idx = cells.task_owner, cells.position
     return pd.DataFrame({
         "person": np.asarray(panel.persons, dtype=object)[p_idx],
-        "task": panel.task_ids[p_idx, t_idx],
-        "lpd": lpd[p_idx, t_idx],
+        "task": cells.task_id,
+        "lpd": lpd,
         "hit": hits[p_idx, t_idx],
         "n_available": panel.available.sum(axis=2)[p_idx, t_idx],
     })

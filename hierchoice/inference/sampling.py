@@ -44,7 +44,7 @@ from .._display import Status
 from ..data.panel import ChoicePanel, load_panel
 from ..exceptions import DataError, FitError, SpecError
 from ..model.build import POPULATION_VARS, build_model, model_layout
-from ..model.likelihood import difference_data, task_loglik_numpy
+from ..model.likelihood import cell_differences, task_loglik_cells
 from ..spec import Spec, load_spec
 from .results import ChoiceFit, thin_draws
 
@@ -420,10 +420,11 @@ def _obs_index(panel: ChoicePanel) -> tuple[np.ndarray, np.ndarray, dict[str, An
     Every per-task quantity of a fit (observed choice, log-likelihood, replicated choices) lies on this one
     ``obs`` dim, with coordinates ``obs_person`` and ``obs_task`` holding the user's person and task ids.
     """
-    p_idx, t_idx = np.nonzero(panel.task_mask)
+    cells = panel.cells  # tasks person after person, each person's in task order: np.nonzero(task_mask)'s order
+    p_idx, t_idx = cells.task_owner, cells.position
     coords = {"obs": np.arange(p_idx.size),
               "obs_person": ("obs", np.array([str(v) for v in np.asarray(panel.persons, dtype=object)[p_idx]])),
-              "obs_task": ("obs", np.array([str(v) for v in panel.task_ids[p_idx, t_idx]]))}
+              "obs_task": ("obs", np.array([str(v) for v in cells.task_id]))}
     return p_idx, t_idx, coords
 
 
@@ -468,16 +469,13 @@ def task_log_likelihood(result: ChoiceFit, draws: xr.DataArray | None = None) ->
     """
     panel = result.panel
     taste = _person_draws(result, draws)
-    data = difference_data(panel.X, panel.available, panel.task_mask, panel.chosen)
-    p_idx, t_idx, coords = _obs_index(panel)
+    data = cell_differences(panel.cells)  # real cells only: tasks in the obs order
+    _, _, coords = _obs_index(panel)
     values = taste.values
     n_c, n_d = values.shape[:2]
-    out = np.empty((n_c, n_d, p_idx.size))
-    step = max(1, int(2e7 // max(1, data.D.size)))
+    out = np.empty((n_c, n_d, data.n_tasks))
     for c in range(n_c):
-        for d0 in range(0, n_d, step):
-            ll = task_loglik_numpy(data, values[c, d0 : d0 + step])  # (d, P, T)
-            out[c, d0 : d0 + step] = ll[:, p_idx, t_idx]
+        out[c] = task_loglik_cells(data, values[c])  # (draw, task)
     return xr.DataArray(out, dims=("chain", "draw", "obs"),
                         coords={"chain": taste["chain"].values, "draw": taste["draw"].values, **coords}, name="chosen")
 

@@ -30,7 +30,7 @@ import numpy as np
 from ..data.panel import PanelCells, csr_pointers
 
 __all__ = ["DifferenceData", "RaggedDifferences", "choice_probabilities", "difference_data", "ragged_differences",
-           "cell_differences", "task_loglik_cells", "task_loglik_graph", "task_loglik_numpy"]
+           "cell_differences", "person_loglik_cells", "task_loglik_cells", "task_loglik_graph", "task_loglik_numpy"]
 
 
 @dataclass(frozen=True)
@@ -178,7 +178,7 @@ def ragged_differences(X: np.ndarray, available: np.ndarray, task_mask: np.ndarr
     return cell_differences(PanelCells.from_dense(X, available, task_mask, chosen), scale)
 
 
-def task_loglik_cells(data: RaggedDifferences, beta: np.ndarray, *, chunk_cells: int = 4_000_000) -> np.ndarray:
+def task_loglik_cells(data: RaggedDifferences, beta: np.ndarray, *, chunk_cells: int = 1_000_000) -> np.ndarray:
     """Per-task log-probability of the observed choice on ragged cells, shape (..., n_tasks).
 
     ``beta`` has shape (..., n_persons, n_attributes) in the units of ``data`` (leading axes, e.g. posterior
@@ -205,6 +205,18 @@ def task_loglik_cells(data: RaggedDifferences, beta: np.ndarray, *, chunk_cells:
         total = np.exp(-m) + np.add.reduceat(np.exp(delta - m[:, cell_real]), starts, axis=1)
         out[s0 : s0 + step, real] = -(m + np.log(total))
     return out.reshape(lead + (data.n_tasks,))
+
+
+def person_loglik_cells(data: RaggedDifferences, beta: np.ndarray) -> np.ndarray:
+    """Per-person panel log-likelihood on ragged cells, shape (..., n_persons): :func:`task_loglik_cells` summed
+    over each person's tasks."""
+    per_task = task_loglik_cells(data, beta)
+    n_t = np.diff(data.person_ptr)
+    out = np.zeros(per_task.shape[:-1] + (data.n_persons,))
+    has = n_t > 0
+    if has.any():
+        out[..., has] = np.add.reduceat(per_task, data.person_ptr[:-1][has], axis=-1)
+    return out
 
 
 def _stable_task_loglik(delta, mask, xp):  # type: ignore[no-untyped-def]
