@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ._args import NOT_GIVEN, aliased
 from .exceptions import SpecError
 from .model.transforms import TasteMap, latent_to_coefficient
 
@@ -336,7 +337,7 @@ def simulate_panel(
     covariates: Mapping[str, Mapping[str, float]] | None = None,
     state_dependence: float | None = None,
     unavailable_rate: float = 0.0,
-    seed: int = 0,
+    random_seed: int = 0, seed: Any = NOT_GIVEN,
     column_names: Mapping[str, str] | None = None,
 ) -> SimulatedPanel:
     """Simulate a long-format panel with known person tastes.
@@ -368,6 +369,7 @@ def simulate_panel(
     column_names : mapping, optional
         Names for the person/task/alternative/chosen columns.
     """
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     rng = np.random.default_rng(seed)
     names = {"person": "respondent", "task": "task", "alternative": "option", "chosen": "chosen"}
     names.update(column_names or {})

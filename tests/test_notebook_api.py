@@ -192,3 +192,22 @@ def test_spec_from_keywords_is_checked_when_made(sim: hc.SimulatedPanel) -> None
     bad["model"]["price"] = "deck"  # a categorical attribute cannot be the price
     with pytest.raises(hc.SpecError, match="numeric"):
         hc.Spec(**bad)
+
+
+def test_ecosystem_argument_names_everywhere(short: ChoiceFit) -> None:
+    """``random_seed`` (PyMC's name) and ``hdi_prob`` (ArviZ's) work where a seed or an interval is taken, the older
+    ``seed`` / ``prob`` stay as aliases, and both names with different values are refused."""
+    from hierchoice.diagnostics.predictive import ppc_shares
+
+    attrs = [hc.SimAttribute("x", levels=[0.0, 1.0, 2.0], mean=1.0, sd=0.5)]
+    a = hc.simulate_panel(attrs, n_persons=20, n_tasks=4, random_seed=7).data
+    b = hc.simulate_panel(attrs, n_persons=20, n_tasks=4, seed=7).data
+    c = hc.simulate_panel(attrs, n_persons=20, n_tasks=4, random_seed=8).data
+    pd.testing.assert_frame_equal(a, b)
+    assert not a.equals(c)  # the seed is used at all
+    new = ppc_shares(short, draws=20, hdi_prob=0.8, random_seed=3)
+    old = ppc_shares(short, draws=20, prob=0.8, seed=3)
+    pd.testing.assert_frame_equal(new, old)
+    assert not new.equals(ppc_shares(short, draws=20, hdi_prob=0.5, random_seed=3))
+    with pytest.raises(hc.SpecError, match="random_seed"):
+        hc.simulate_panel(attrs, n_persons=20, n_tasks=4, random_seed=1, seed=2)

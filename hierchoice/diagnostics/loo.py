@@ -64,7 +64,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .._args import whole_number
+from .._args import NOT_GIVEN, aliased, whole_number
 from .._display import Progress, want_progress
 from .._records import Check
 from ..exceptions import FitError, SpecError, first_few
@@ -339,7 +339,7 @@ def _importance_log_weights(data: RaggedDifferences, layout: Any, base: np.ndarr
     return _loglik(data, layout, base[:, None], u) + log_g - log_q
 
 
-def person_loo(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, seed: int = 0,
+def person_loo(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, random_seed: int = 0, seed: Any = NOT_GIVEN,
                return_estimate: bool = False, progressbar: bool | None = None, label: str = "person LOO") -> Any:
     r"""PSIS-LOO over persons: :func:`arviz.loo` on :func:`person_log_marginal`.
 
@@ -355,6 +355,7 @@ def person_loo(result: Any, *, n_sim: int = 200, max_draws: int | None = 400, se
     Dataset is returned too, as ``(loo, estimate)``. ``progressbar`` and ``label``: see
     :func:`person_log_marginal` (None: a progress bar in interactive use only).
     """
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     import arviz as az
 
     est = person_log_marginal(result, n_sim=n_sim, max_draws=max_draws, seed=seed, progressbar=progressbar,
@@ -418,7 +419,7 @@ def pareto_k_checks(loo: Any, level: str) -> list[Check]:
 
 
 def compare_models(models: Mapping[str, Any], *, level: str = "task", n_sim: int = 200,
-                   max_draws: int | None = 400, seed: int = 0, progressbar: bool | None = None) -> pd.DataFrame:
+                   max_draws: int | None = 400, random_seed: int = 0, seed: Any = NOT_GIVEN, progressbar: bool | None = None) -> pd.DataFrame:
     """Compare fits of the same panel by PSIS-LOO with :func:`arviz.compare`.
 
     Parameters
@@ -440,6 +441,7 @@ def compare_models(models: Mapping[str, Any], *, level: str = "task", n_sim: int
         ``weight``, ``se``, ``dse``, ``warning``, ``scale``) with ``n_bad_k`` (how
         many Pareto k exceed ``good_k``), ``max_k`` and ``good_k`` added.
     """
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     import arviz as az
 
     if level not in ("task", "person"):

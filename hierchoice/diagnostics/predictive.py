@@ -41,7 +41,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .._args import whole_number
+from .._args import NOT_GIVEN, aliased, whole_number
 from .._backend import load_backend, quiet_pymc_logs
 from .._display import Progress, html_table, status, want_progress
 from ..data.panel import ChoicePanel
@@ -288,7 +288,7 @@ def _replicate_choices(prob: np.ndarray, rng: np.random.Generator) -> np.ndarray
     return np.minimum((cum < u).sum(axis=-1), prob.shape[-1] - 1)
 
 
-def ppc_shares(result: Any, *, draws: int = 200, prob: float = 0.9, seed: int = 0,
+def ppc_shares(result: Any, *, draws: int = 200, hdi_prob: float = 0.9, prob: Any = NOT_GIVEN, random_seed: int = 0, seed: Any = NOT_GIVEN,
                panel: ChoicePanel | None = None) -> pd.DataFrame:
     """Posterior-predictive check of choice shares per alternative and per categorical level.
 
@@ -306,6 +306,8 @@ def ppc_shares(result: Any, *, draws: int = 200, prob: float = 0.9, seed: int = 
         ``p_value`` (share of replications at or above the observed share; Gelman,
         Meng & Stern 1996) and ``outside`` (observed outside the interval).
     """
+    prob = aliased("hdi_prob", hdi_prob, "prob", prob, 0.9)
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     if not 0 < prob < 1:
         raise SpecError(f"ppc_shares(prob=...) must be in (0, 1), got {prob!r}.")
     whole_number(draws, "ppc_shares(draws=...)", minimum=2)
@@ -556,7 +558,7 @@ def holdout_validation(
     *,
     tasks: int = 1,
     method: str = "last",
-    seed: int = 0,
+    random_seed: int = 0, seed: Any = NOT_GIVEN,
     compare_fixed: bool = True,
     draws: int | None = None,
     tune: int | None = None,
@@ -593,6 +595,7 @@ def holdout_validation(
     -------
     HoldoutResult
     """
+    seed = aliased("random_seed", random_seed, "seed", seed, 0)
     from ..inference.sampling import fit
 
     spec = panel.spec if spec is None else load_spec(spec)
