@@ -261,10 +261,11 @@ def test_bad_arguments_are_reported_by_name(design):
     with pytest.raises(SpecError, match="workers"):
         run_tasks(abs, [1], workers=0)
     attrs = [hc.SimAttribute("x", levels=[0.0, 1.0], mean=0.5, sd=0.3)]
+    wtp_width, sd_detection = cal.WtpWidth("x", "fare"), cal.SdDetection("x", 0.1)
     with pytest.raises(SpecError, match="price"):
-        cal.power_analysis(attrs, cal.WtpWidth("x", "fare"), persons=(10,), simulation={"n_tasks": 2})
+        cal.power_analysis(attrs, wtp_width, persons=(10,), simulation={"n_tasks": 2})
     with pytest.raises(SpecError, match="n_persons"):
-        cal.power_analysis(attrs, cal.SdDetection("x", 0.1), simulation={"n_persons": 5})
+        cal.power_analysis(attrs, sd_detection, simulation={"n_persons": 5})
 
 
 # --------------------------------------------------------------------------- calibration with NUTS

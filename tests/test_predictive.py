@@ -15,12 +15,19 @@ import pandas as pd
 import pytest
 
 from hierchoice import ChoicePanel, DataError, SimAttribute, SpecError, ferry_scenario, simulate_panel
+from hierchoice.diagnostics.predictive import (
+    fixed_taste_spec,
+    hit_rate,
+    holdout_split,
+    holdout_validation,
+    posterior_choice_probabilities,
+    ppc_shares,
+    prior_predictive,
+    reliability,
+    score_tasks,
+)
 from hierchoice.inference.results import ChoiceFit
 from hierchoice.model.build import model_layout
-from hierchoice.diagnostics.predictive import (
-    fixed_taste_spec, hit_rate, holdout_split, holdout_validation, posterior_choice_probabilities, ppc_shares,
-    prior_predictive, reliability, score_tasks,
-)
 from hierchoice.spec import Spec
 
 LEVELS = np.round(np.linspace(-3, 3, 25), 3).tolist()
@@ -112,8 +119,9 @@ def test_reliability_is_calibrated_with_true_tastes_and_not_when_overconfident()
     top = over.iloc[-1]
     assert top["mean_predicted"] > 0.9
     assert top["observed"] < top["mean_predicted"] - 4 * top["se"]
+    fit = _fit_with_tastes(panel, truth[None, None])
     with pytest.raises(SpecError, match="bins"):
-        reliability(_fit_with_tastes(panel, truth[None, None]), bins=0)
+        reliability(fit, bins=0)
 
 
 # --------------------------------------------------------------------------- posterior-predictive shares
@@ -243,9 +251,9 @@ def test_in_sample_checks_on_a_real_fit(holdout: Any) -> None:
     assert shares["replicated_mean"].sum() == pytest.approx(1.0)
     rows = score_tasks(fit, holdout.test)
     assert len(rows) == holdout.test.n_tasks and (rows["lpd"] < 0).all()
+    other, _, _ = _sim([SimAttribute("x1", levels=LEVELS, mean=0.0), SimAttribute("x2", levels=LEVELS)],
+                       n_persons=70, n_tasks=2, seed=1)
     with pytest.raises(DataError, match="no posterior tastes"):
-        other, _, _ = _sim([SimAttribute("x1", levels=LEVELS, mean=0.0), SimAttribute("x2", levels=LEVELS)],
-                           n_persons=70, n_tasks=2, seed=1)
         score_tasks(fit, other)
 
 
