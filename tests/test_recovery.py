@@ -116,9 +116,9 @@ def test_stochastic_advi_population_means_near_nuts_on_b1():
     z = ((a.loc[rows, "mean"] - n.loc[rows, "mean"]) / n.loc[rows, "sd"]).abs()
     print("ADVI vs NUTS, |difference| in NUTS posterior SDs:", z.round(2).to_dict())
     # The line 2 is the requirement, not a chance bound; the chance part of z is the Monte Carlo error of the two
-    # means: NUTS with bulk ESS >= 400 (asserted) has MCSE <= 0.05 posterior SDs (MCSE = SD / sqrt(ESS)), ADVI's
-    # 500 independent draws <= 0.045, together <= 0.067 SDs. With the largest z measured in nine runs (1.72, see
-    # above) the chance of crossing 2 is P(N(0, 0.067^2) > 0.28) = 1.5e-5 (normal): the false-alarm rate.
+    # means: NUTS's MCSE = SD / sqrt(ESS) (ESS >= 100, the checks' fail line, asserted: <= 0.1 posterior SDs) and
+    # ADVI's 500 independent draws (<= 0.045 SDs), together <= 0.11 SDs. With the largest z measured in nine runs
+    # (1.72, see above) the chance of crossing 2 is P(N(0, 0.11^2) > 0.28) = 0.5 % (normal): the false-alarm rate.
     ess = parameter_diagnostics(nuts.idata).loc[rows, "ess_bulk"]
-    assert (ess >= 400).all(), ess
+    assert (ess >= 100).all(), ess
     assert (z < 2).all(), z
