@@ -8,6 +8,7 @@ breaks it in one way and checks both the exception type and that the message nam
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 from typing import Any
 
@@ -307,6 +308,9 @@ def test_covariate_varying_within_person_is_named(case: Case, data: st.DataObjec
 #: another they may hide each other (a dropped column takes its bad cells with it), so the test asserts that
 #: loading raises DataError and that the message names at least one of the defects applied, by its column and
 #: the words of its check.
+#: Numbers for new alternative labels, never the same twice.
+_NEW_LABELS = itertools.count()
+
 DEFECTS = ["drop_column", "nan", "text", "duplicate", "no_choice", "constant", "mixed_ids", "unknown_alt",
            "bad_indicator"]
 
@@ -378,8 +382,8 @@ def _apply_defect(case: Case, original: pd.DataFrame, defect: str, data: st.Data
         listed = list(dict.fromkeys(str(a) for a in original[n["alternative"]]))
         case.spec.setdefault("data", {})["alternatives"] = listed
         # a new label each time: two rows of one task given the same label would be a duplicate instead
-        k = int((~f[n["alternative"]].astype(str).isin(listed)).sum())
-        unknown = f"zz_not_listed{k}" if text_ids("alternative") else 999 + k
+        k = next(_NEW_LABELS)
+        unknown = f"zz_not_listed{k}" if text_ids("alternative") else 1_000_000 + k
         f.loc[data.draw(st.sampled_from(list(f.index))), n["alternative"]] = unknown
         return [repr(n["alternative"]), "not listed in data.alternatives"]
     if defect == "bad_indicator":
