@@ -229,7 +229,7 @@ def test_rhat_and_ess_known_answers(synthetic_chains: dict[str, np.ndarray]) -> 
     """Known answers for chains whose dependence is known, through the package and through the reference.
 
     Tolerances were set from the spread of the estimates over 300 seeds of the same design (4 x 2,000 draws,
-    measured with this file's reference, December 2026): relative SD of the bulk ESS 3.4 % for iid draws and 5.8 %
+    measured once with ArviZ 0.23's ess and rhat, which this file's reference matches within 1 %): relative SD of the bulk ESS 3.4 % for iid draws and 5.8 %
     for AR(1) with phi = 0.5, so the tolerances 15 % and 25 % are 4.3 SDs (false-alarm rate below 1e-4 each,
     normal approximation); the largest R-hat of iid chains over those seeds was 1.004 against the line 1.01.
     """
