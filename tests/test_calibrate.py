@@ -261,10 +261,11 @@ def test_bad_arguments_are_reported_by_name(design):
     with pytest.raises(SpecError, match="workers"):
         run_tasks(abs, [1], workers=0)
     attrs = [hc.SimAttribute("x", levels=[0.0, 1.0], mean=0.5, sd=0.3)]
+    wtp_width, sd_detection = cal.WtpWidth("x", "fare"), cal.SdDetection("x", 0.1)
     with pytest.raises(SpecError, match="price"):
-        cal.power_analysis(attrs, cal.WtpWidth("x", "fare"), persons=(10,), simulation={"n_tasks": 2})
+        cal.power_analysis(attrs, wtp_width, persons=(10,), simulation={"n_tasks": 2})
     with pytest.raises(SpecError, match="n_persons"):
-        cal.power_analysis(attrs, cal.SdDetection("x", 0.1), simulation={"n_persons": 5})
+        cal.power_analysis(attrs, sd_detection, simulation={"n_persons": 5})
 
 
 # --------------------------------------------------------------------------- calibration with NUTS
@@ -483,9 +484,18 @@ def test_recovery_and_power_with_nuts(client):
     fitter = cal.NutsFitter(draws=300, tune=300, chains=1, backend="pymc")
     rec = cal.parameter_recovery(attrs, replications=20, simulation=sim, fitter=fitter, seed=5, client=client,
                                  progress=False)
-    # 20 replications: a 90 % interval's coverage below 0.65 is beyond 3 binomial SEs (0.067)
-    assert (rec["coverage"].sel(prob=0.9) >= 0.65).all(), rec["coverage"].values
+    # 20 replications of a calibrated 90 % interval: the covered count is Binomial(20, 0.9), and fewer than 14
+    # has probability scipy.stats.binom.cdf(13, 20, 0.9) = 0.24 % per parameter, 0.72 % over the 3: the
+    # false-alarm rate of the coverage line
+    assert (rec["coverage"].sel(prob=0.9) >= 0.7).all(), rec["coverage"].values
+    # bias / bias_se is a t statistic with 19 degrees of freedom: beyond 4 with probability 2 x
+    # scipy.stats.t.sf(4, 19) = 0.077 % per parameter, 0.23 % over the 3; the 0.05 is not chance but room for the
+    # pull of a posterior mean towards the prior (a posterior mean is not an unbiased estimate of the truth)
     assert (np.abs(rec["bias"]) < 4 * rec["bias_se"] + 0.05).all(), rec["bias"].values
+    # negative control: a truth moved by twice each interval's half-width (a location bug) falls outside them
+    moved = rec["truth"] + (rec["upper"] - rec["lower"]).sel(prob=0.9)
+    outside = (moved < rec["lower"].sel(prob=0.9)) | (moved > rec["upper"].sel(prob=0.9))
+    assert (outside.mean("replication") > 1 - 0.7).all()
     power = cal.power_analysis(attrs, cal.SdDetection("x", 0.2), persons=(20, 200), replications=10,
                                simulation={"n_tasks": 8, "alternatives": ("a", "b", "c")}, fitter=fitter,
                                seed=6, client=client, progress=False)

@@ -1,7 +1,8 @@
 """PSIS-LOO at task and person level, the simulated person marginal likelihood, and model comparison.
 
-No model is sampled here: the fits are built from invented posteriors around known tastes, so the
-tests check the arithmetic (against ArviZ and against Gauss–Hermite quadrature), not the sampler.
+No model is sampled here: the fits are built from invented posteriors around known tastes, or drawn iid from
+an exact posterior computed on a grid, so the tests check the arithmetic (against Gauss–Hermite quadrature and
+against exact leave-one-out on the grid, never against the ArviZ call the code makes), not the sampler.
 Gauss–Hermite reference values come from ``numpy.polynomial.hermite_e.hermegauss`` (probabilists'
 Hermite nodes, weight exp(-x^2/2), so E[f(Z)] = sum_i w_i f(x_i) / sqrt(2 pi) for Z ~ N(0, 1); NumPy
 2.4 documentation).
@@ -9,21 +10,25 @@ Hermite nodes, weight exp(-x^2/2), so E[f(Z)] = sum_i w_i f(x_i) / sqrt(2 pi) fo
 
 from __future__ import annotations
 
-import warnings
 from typing import Any
 
 import arviz as az
 import numpy as np
 import pytest
 from numpy.polynomial.hermite_e import hermegauss
+from scipy import stats
 from scipy.special import logsumexp
 
 from hierchoice import ChoicePanel, FitError, SimAttribute, simulate_panel
 from hierchoice.diagnostics.loo import (
-    PERSON_LOGLIK, compare_models, pareto_k_checks, person_log_marginal, person_loo, task_loo,
+    compare_models,
+    pareto_k_checks,
+    person_log_marginal,
+    person_loo,
+    task_loo,
 )
-from hierchoice.inference.sampling import add_log_likelihood
 from hierchoice.inference.results import ChoiceFit
+from hierchoice.inference.sampling import add_log_likelihood
 from hierchoice.model.build import model_layout
 
 N_CHAINS, N_DRAWS = 2, 3
@@ -175,25 +180,77 @@ def two_fits() -> dict[str, ChoiceFit]:
     return out
 
 
-def test_task_loo_equals_arviz_loo(two_fits: dict[str, ChoiceFit]) -> None:
-    fit = two_fits["true"]
-    ours = task_loo(fit)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        ref = az.loo(fit.idata, var_name="chosen", pointwise=True)  # ArviZ 0.23.4, the same log-likelihood
-    for key in ("elpd_loo", "se", "p_loo", "n_data_points", "good_k"):
-        assert float(ours[key]) == pytest.approx(float(ref[key]), rel=1e-12)
-    np.testing.assert_allclose(ours["loo_i"].values, ref["loo_i"].values)
-    np.testing.assert_allclose(ours["pareto_k"].values, ref["pareto_k"].values)
+def _task_loglik(panel: ChoicePanel, beta: np.ndarray) -> np.ndarray:
+    """Independent per-task log-likelihood (McFadden 1974), ``beta`` (..., P, K) -> (..., P, T); 0 on padding."""
+    u = np.einsum("ptjk,...pk->...ptj", panel.X, beta)
+    avail = panel.available | ~panel.task_mask[:, :, None]
+    u = np.where(avail, u, -np.inf)
+    c = np.clip(panel.chosen, 0, None)
+    u_c = np.take_along_axis(u, np.broadcast_to(c[..., None], u.shape[:-1] + (1,)), axis=-1)[..., 0]
+    return np.where(panel.task_mask, u_c - logsumexp(u, axis=-1), 0.0)
+
+
+@pytest.fixture(scope="module")
+def exact_task_loo() -> dict[str, Any]:
+    """One fixed taste on a tiny panel: its posterior on a fine grid, exact leave-one-task-out, and iid draws.
+
+    With one coefficient the posterior under a N(0, 2^2) prior (chosen here) is computed on a grid of 4,001
+    points, and so is each leave-one-out predictive density exactly: p(y_i | y_-i) = 1 / E_post[1 / p(y_i | b)]
+    (Gelfand, Dey & Chang 1992, Bayesian Statistics 4), i.e. the posterior without task i, refitted on the grid.
+    The fake fit's draws are iid from that grid posterior, so PSIS-LOO on them estimates exactly that.
+    """
+    panel = _panel([SimAttribute("x", levels=np.linspace(-1.5, 1.5, 7).tolist(), taste="fixed", mean=0.8)],
+                   seed=31, n_persons=15, n_tasks=4)
+    grid = np.linspace(-3.0, 5.0, 4001)
+    ll = _task_loglik(panel, np.broadcast_to(grid[:, None, None], (grid.size, panel.n_persons, 1)))  # (G, P, T)
+    ll = ll.reshape(grid.size, -1)[:, panel.task_mask.ravel()]  # (G, task) in the panel's task order
+    log_post = stats.norm.logpdf(grid, 0.0, 2.0) + ll.sum(axis=1)
+    post = np.exp(log_post - logsumexp(log_post))
+    exact = -logsumexp(-ll, axis=0, b=post[:, None])  # (task,) log p(y_i | y_-i)
+    lppd_exact = logsumexp(ll, axis=0, b=post[:, None])  # in-sample log p(y_i | y)
+    rng = np.random.default_rng(0)
+    shape = (2, 2000)
+    index = rng.choice(grid.size, size=shape[0] * shape[1], p=post).reshape(shape)
+    beta = grid[index]
+    fit = _fake_fit(panel, {"taste_mean": beta[..., None],
+                            "person_taste": np.broadcast_to(beta[..., None, None],
+                                                            shape + (panel.n_persons, 1)).copy()})
+    # the sampling distribution of a leave-one-out estimate from S = 4,000 iid posterior draws: 400 replicate
+    # draw sets, each scored by plain importance sampling, -log mean_s 1 / p(y_i | b_s) (Gelfand, Dey & Chang
+    # 1992). The estimate is skewed (1 / p has a long right tail), so its quantiles are taken, not +-z SE.
+    r_grid = np.exp(-ll)  # (G, task)
+    replicates = np.stack([-np.log(r_grid[rng.choice(grid.size, size=shape[0] * shape[1], p=post)].mean(axis=0))
+                           for _ in range(400)])  # (replicate, task)
+    return {"fit": fit, "exact": exact, "lppd": lppd_exact, "replicates": replicates}
+
+
+def test_task_loo_equals_exact_leave_one_out(exact_task_loo: dict[str, Any]) -> None:
+    ours = task_loo(exact_task_loo["fit"])
+    exact, reps = exact_task_loo["exact"], exact_task_loo["replicates"]
+    n = exact.size
+    assert int(ours["n_data_points"]) == n
+    # the replicates centre on the exact values (a check of the reference): their mean total within 3 SEs of
+    # the mean of 400 replicates (false-alarm rate 0.3 %, normal) plus the O(1/S) bias of the log of a mean
+    totals = reps.sum(axis=1)
+    assert abs(totals.mean() - exact.sum()) < 3 * totals.std(ddof=1) / np.sqrt(len(totals)) + 0.05
+    # the package's total within the 0.5 % and 99.5 % quantiles of the replicate totals: false-alarm rate 1 %
+    # (two-sided), as an estimate from these draws of the exact leave-one-out total
+    lo, hi = np.quantile(totals, [0.005, 0.995])
+    assert lo <= float(ours["elpd_loo"]) <= hi, (float(ours["elpd_loo"]), lo, hi, exact.sum())
+    assert abs(float(ours["elpd_loo"]) - exact.sum()) < float(ours["se"])  # and well within its reported SE
+    # every task within the range of its 400 replicates, widened by 1e-3 for the Pareto smoothing (which
+    # replaces the largest weights; 1e-3 is common practice, 1/10 of the reported SE of a task here)
+    pointwise = ours["loo_i"].values
+    assert np.all((pointwise >= reps.min(axis=0) - 1e-3) & (pointwise <= reps.max(axis=0) + 1e-3))
+    # p_loo against its exact value: in-sample lppd minus elpd_loo (Vehtari, Gelman & Gabry 2017, Statistics and
+    # Computing 27, section 2); one free coefficient gives about 1
+    p_exact = float(exact_task_loo["lppd"].sum() - exact.sum())
+    assert 0.5 < p_exact < 1.5
+    assert float(ours["p_loo"]) == pytest.approx(p_exact, abs=hi - lo)
+    # negative control: the in-sample lppd (a LOO that forgot to leave out) lies outside the replicates' range
+    assert not lo <= float(exact_task_loo["lppd"].sum()) <= hi
     # one term per task, labelled by person and task id
-    assert ours["n_data_points"] == fit.panel.n_tasks
     assert "obs_person" in ours["loo_i"].coords and "obs_task" in ours["loo_i"].coords
-    # the definition of p_loo: in-sample lppd minus elpd_loo (Vehtari, Gelman & Gabry 2017, Statistics and
-    # Computing 27, section 2; from memory)
-    ll = fit.idata.log_likelihood["chosen"].stack(s=("chain", "draw")).transpose("obs", "s").values
-    lppd = float(np.sum(logsumexp(ll, axis=1) - np.log(ll.shape[1])))
-    assert float(ours["p_loo"]) == pytest.approx(lppd - float(ours["elpd_loo"]), rel=1e-9)
-    assert float(ours["elpd_loo"]) < lppd
 
 
 def test_task_loo_builds_the_log_likelihood_when_missing(two_fits: dict[str, ChoiceFit]) -> None:
@@ -207,24 +264,65 @@ def test_task_loo_builds_the_log_likelihood_when_missing(two_fits: dict[str, Cho
         task_loo(no_tastes)
 
 
-def test_person_loo_is_arviz_loo_on_the_marginal_likelihood(two_fits: dict[str, ChoiceFit]) -> None:
-    fit = two_fits["true"]
-    loo, est = person_loo(fit, n_sim=100, max_draws=100, seed=4, return_estimate=True)
-    assert est.sizes == {"chain": 2, "draw": 50, "person": fit.panel.n_persons}  # thinned evenly per chain
-    thinned = fit.idata.posterior.isel(draw=slice(None, None, 3))[["taste_mean", "taste_sd"]]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        ref = az.loo(az.InferenceData(posterior=thinned, log_likelihood=est[["log_marginal"]].rename(
-            {"log_marginal": PERSON_LOGLIK})), var_name=PERSON_LOGLIK, pointwise=True)  # ArviZ 0.23.4
-    # person_loo raises each value by (1 - a_d) sigma_d^2 / 2 (the second-order bias of the LOO average over
-    # draws, a_d the normalised weights): the difference is positive and at most the sum of the persons' largest
-    # sigma^2 / 2 (elpd_loo is increasing in each value)
-    shift = float(loo["elpd_loo"]) - float(ref["elpd_loo"])
-    assert 0 < shift <= 0.5 * float((est["mc_se"] ** 2).max(dim=("chain", "draw")).sum()) + 1e-9
-    assert loo["elpd_mc_se"] > 0 and est["loo_mc_se"].dims == ("person",)
+@pytest.fixture(scope="module")
+def exact_person_loo() -> dict[str, Any]:
+    """One random normal taste on a tiny panel: the posterior of (mean, SD) on a grid, exact leave-one-person-out.
+
+    Each person's marginal likelihood L_p(mu, sigma) = E[prod_t p(y_pt | mu + sigma Z)] by 40-node Gauss-Hermite
+    quadrature (numpy's hermegauss, see the module docstring); priors mu ~ N(0, 2^2), sigma ~ half-N(0, 2^2)
+    (chosen here) on a 61 x 60 grid; then p(y_p | y_-p) = 1 / E_post[1 / L_p] (Gelfand, Dey & Chang 1992), the
+    posterior without person p, refitted on the grid. The fake fit's draws are iid from the grid posterior.
+    """
+    panel = _panel([SimAttribute("x", levels=np.linspace(-1.5, 1.5, 7).tolist(), mean=0.8, sd=0.7)],
+                   seed=41, n_persons=20, n_tasks=5)
+    mus, sds = np.linspace(-0.6, 2.4, 61), np.linspace(0.02, 2.4, 60)
+    mu_g, sd_g = (a.ravel() for a in np.meshgrid(mus, sds, indexing="ij"))
+    x, w = hermegauss(40)
+    log_w = np.log(w / np.sqrt(2 * np.pi))
+    log_l = np.empty((mu_g.size, panel.n_persons))  # (grid, person)
+    for p in range(panel.n_persons):
+        one = panel.X[p:p + 1]  # the person's tasks, through a one-person view of the panel's arrays
+        beta = mu_g[:, None] + sd_g[:, None] * x[None, :]  # (grid, node)
+        u = one[0, :, :, 0][None, None] * beta[..., None, None]  # (grid, node, task, alternative)
+        u = np.where(panel.available[p][None, None], u, -np.inf)
+        c = np.clip(panel.chosen[p], 0, None)
+        u_c = np.take_along_axis(u, np.broadcast_to(c[None, None, :, None], u.shape[:-1] + (1,)), axis=-1)[..., 0]
+        ll = np.where(panel.task_mask[p][None, None], u_c - logsumexp(u, axis=-1), 0.0).sum(axis=-1)
+        log_l[:, p] = logsumexp(ll + log_w[None, :], axis=1)
+    log_prior = stats.norm.logpdf(mu_g, 0, 2) + stats.halfnorm.logpdf(sd_g, scale=2)
+    log_post = log_prior + log_l.sum(axis=1)
+    post = np.exp(log_post - logsumexp(log_post))
+    exact = -logsumexp(-log_l, axis=0, b=post[:, None])  # (person,)
+    rng = np.random.default_rng(0)
+    shape = (2, 200)
+    index = rng.choice(mu_g.size, size=shape, p=post)
+    fit = _fake_fit(panel, {"taste_mean": mu_g[index][..., None], "taste_sd": sd_g[index][..., None]})
+    # the sampling distribution of the estimate from 400 iid draws: 2,000 replicate draw sets scored by plain
+    # importance sampling, -sum_p log mean_s 1 / L_p(theta_s)
+    inv_l = np.exp(-log_l)
+    totals = np.array([-np.log(inv_l[rng.choice(mu_g.size, size=400, p=post)].mean(axis=0)).sum()
+                       for _ in range(2000)])
+    return {"fit": fit, "exact": exact, "totals": totals}
+
+
+def test_person_loo_equals_exact_leave_one_person_out(exact_person_loo: dict[str, Any]) -> None:
+    fit, exact, totals = exact_person_loo["fit"], exact_person_loo["exact"], exact_person_loo["totals"]
+    loo, est = person_loo(fit, n_sim=200, max_draws=400, seed=4, return_estimate=True)
+    assert est.sizes == {"chain": 2, "draw": 200, "person": fit.panel.n_persons}
     assert loo["loo_i"].dims == ("person",) and loo["n_data_points"] == fit.panel.n_persons
-    # predicting a new person is harder than predicting a new task of a known person
-    assert float(loo["elpd_loo"]) < float(task_loo(fit)["elpd_loo"])
+    # the reference centres on the exact value: the mean of the 2,000 replicates within 3 SEs (0.3 %, normal)
+    # plus 0.05 for the O(1/S) bias of the log of a mean
+    assert abs(totals.mean() - exact.sum()) < 3 * totals.std(ddof=1) / np.sqrt(len(totals)) + 0.05
+    # the package's elpd within the 0.25 % and 99.75 % quantiles of the replicates (draw-set error, 0.5 %) widened
+    # by 3 of its own Monte Carlo SEs for the simulated marginals (0.27 %, normal): false-alarm rate <= 0.8 %
+    lo, hi = np.quantile(totals, [0.0025, 0.9975])
+    mc = 3 * float(loo["elpd_mc_se"])
+    assert lo - mc <= float(loo["elpd_loo"]) <= hi + mc, (float(loo["elpd_loo"]), lo, hi, mc, exact.sum())
+    assert loo["elpd_mc_se"] > 0 and est["loo_mc_se"].dims == ("person",)
+    # negative control: the in-sample sum of log E_post[L_p] (a LOO that forgot to leave out) is outside that range
+    log_marg = est["log_marginal"].stack(s=("chain", "draw")).transpose("person", "s").values
+    in_sample = float((logsumexp(log_marg, axis=1) - np.log(log_marg.shape[1])).sum())
+    assert not lo - mc <= in_sample <= hi + mc, (in_sample, lo, hi)
 
 
 @pytest.mark.parametrize("level", ["task", "person"])

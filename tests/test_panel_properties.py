@@ -8,6 +8,7 @@ breaks it in one way and checks both the exception type and that the message nam
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 from typing import Any
 
@@ -303,40 +304,119 @@ def test_covariate_varying_within_person_is_named(case: Case, data: st.DataObjec
 
 # --------------------------------------------------------------------------- several defects at once
 
+#: Each defect breaks the table in a way validation must refuse, whatever else is broken. Applied one after
+#: another they may hide each other (a dropped column takes its bad cells with it), so the test asserts that
+#: loading raises DataError and that the message names at least one of the defects applied, by its column and
+#: the words of its check.
+#: Numbers for new alternative labels, never the same twice.
+_NEW_LABELS = itertools.count()
+
 DEFECTS = ["drop_column", "nan", "text", "duplicate", "no_choice", "constant", "mixed_ids", "unknown_alt",
-           "bad_indicator", "shuffle_types"]
+           "bad_indicator"]
+
+def _apply_defect(case: Case, original: pd.DataFrame, defect: str, data: st.DataObject) -> list[str] | None:
+    """Break ``case.frame`` (and spec) by ``defect``; return the texts its error names, or None if no column fits.
+
+    ``original`` is the valid table, for the type of each id column and the alternatives it lists.
+    """
+    n, f = case.names, case.frame
+    present = [r for r in ("person", "task", "alternative", "chosen", "available", "x", "w", "z")
+               if n[r] in f.columns]
+
+    def pick(roles: list[str]) -> str | None:
+        usable = [r for r in roles if r in present]
+        return data.draw(st.sampled_from(usable)) if usable else None
+
+    def text_ids(role: str) -> bool:
+        return isinstance(original[n[role]].iloc[0], str)
+
+    if defect == "drop_column":
+        role = pick([r for r in present if r != "available" or "available" in case.spec["columns"]])
+        case.frame = f.drop(columns=n[role])
+        return ["Missing column", repr(n[role])]
+    if defect == "duplicate":
+        row = data.draw(st.sampled_from(list(f.index)))
+        case.frame = pd.concat([f, f.loc[[row]]], ignore_index=True)
+        return ["Duplicate"]
+    if defect == "no_choice":
+        if not {"person", "task", "chosen"} <= set(present):
+            return None
+        row = data.draw(st.sampled_from(list(f.index)))
+        task = (f[n["person"]] == f.at[row, n["person"]]) & (f[n["task"]] == f.at[row, n["task"]])
+        f.loc[task, n["chosen"]] = 0
+        return [repr(n["chosen"]), "not exactly one chosen"]
+    if defect == "nan":
+        role = pick(["person", "task", "alternative", "chosen", "x", "w", "z"])
+        if role is None:
+            return None
+        rows = list(f.index)
+        if role in ("x", "w") and n["available"] in f.columns:  # a value may be missing where unavailable
+            rows = list(f.index[f[n["available"]].astype(str) != "0"])
+        f[n[role]] = f[n[role]].astype(object)
+        f.loc[data.draw(st.sampled_from(rows)), n[role]] = np.nan
+        words = {"chosen": "must be 0/1"}.get(role, "missing")
+        return [repr(n[role]), words]
+    if defect == "text":
+        role = pick(["chosen", "x", "w", "z"])
+        if role is None:
+            return None
+        f[n[role]] = f[n[role]].astype(object)
+        f.loc[data.draw(st.sampled_from(list(f.index))), n[role]] = "oops"
+        return [repr(n[role]), "'oops'"]
+    if defect == "constant":
+        role = pick(["x", "w"])
+        if role is None:
+            return None
+        f[n[role]] = 1.0
+        return [repr(n[role]), "constant"]
+    if defect == "mixed_ids":
+        role = pick(["person", "task", "alternative"])
+        if role is None:
+            return None
+        f[n[role]] = f[n[role]].astype(object)
+        f.loc[data.draw(st.sampled_from(list(f.index))), n[role]] = 7 if text_ids(role) else "7"
+        return [repr(n[role]), "mixes id types"]
+    if defect == "unknown_alt":
+        if "alternative" not in present:
+            return None
+        listed = list(dict.fromkeys(str(a) for a in original[n["alternative"]]))
+        case.spec.setdefault("data", {})["alternatives"] = listed
+        # a new label each time: two rows of one task given the same label would be a duplicate instead
+        k = next(_NEW_LABELS)
+        unknown = f"zz_not_listed{k}" if text_ids("alternative") else 1_000_000 + k
+        f.loc[data.draw(st.sampled_from(list(f.index))), n["alternative"]] = unknown
+        return [repr(n["alternative"]), "not listed in data.alternatives"]
+    if defect == "bad_indicator":
+        role = pick(["chosen", "available"])
+        if role is None:
+            return None
+        f[n[role]] = f[n[role]].astype(object)
+        f.loc[data.draw(st.sampled_from(list(f.index))), n[role]] = 5
+        return [repr(n[role]), "must be 0/1", "'5'"]
+    raise AssertionError(f"unknown defect {defect!r}")
 
 
 @given(valid_cases(), st.lists(st.sampled_from(DEFECTS), min_size=1, max_size=4), st.data())
 @settings(max_examples=100)
-def test_any_mix_of_defects_raises_only_data_error(case: Case, defects: list[str], data: st.DataObject) -> None:
-    n = case.names
-    f = case.frame
-    for defect in defects:
-        if len(f) == 0:
-            break
-        row = data.draw(st.sampled_from(list(f.index)))
-        col = n[data.draw(st.sampled_from(["person", "task", "alternative", "chosen", "x", "w", "z"]))]
-        if col not in f.columns:
-            continue
-        if defect == "drop_column":
-            f = f.drop(columns=col)
-        elif defect == "nan":
-            f.loc[row, col] = np.nan
-        elif defect in ("text", "mixed_ids", "bad_indicator", "shuffle_types"):
-            f[col] = f[col].astype(object)
-            f.loc[row, col] = {"text": "oops", "mixed_ids": 3, "bad_indicator": 5, "shuffle_types": True}[defect]
-        elif defect == "duplicate":
-            f = pd.concat([f, f.loc[[row]]], ignore_index=True)
-        elif defect == "no_choice":
-            f.loc[:, n["chosen"]] = 0
-        elif defect == "constant":
-            f[col] = 1
-    case.frame = f
-    try:
-        _load(case)
-    except DataError:
-        pass  # the only acceptable failure (some mixes are harmless, e.g. True in a 0/1 column)
+def test_any_mix_of_defects_is_refused_naming_one_of_them(case: Case, defects: list[str],
+                                                          data: st.DataObject) -> None:
+    original = case.frame.copy()
+    _load(case)  # the table is valid before it is broken
+    named = [texts for d in defects if (texts := _apply_defect(case, original, d, data)) is not None]
+    assert named, defects  # the first defect always finds its column
+    msg = _raises_data_error(case)
+    assert any(all(t in msg for t in texts) for texts in named), (defects, named, msg)
+
+
+@pytest.mark.parametrize("defect", DEFECTS)
+@given(case=valid_cases(), data=st.data())
+@settings(max_examples=12)
+def test_each_defect_alone_is_refused_and_named(defect: str, case: Case, data: st.DataObject) -> None:
+    original = case.frame.copy()
+    texts = _apply_defect(case, original, defect, data)
+    assert texts is not None  # on a whole table every defect finds its column
+    msg = _raises_data_error(case)
+    assert all(t in msg for t in texts), (defect, texts, msg)
 
 
 # --------------------------------------------------------------------------- bad specs

@@ -15,12 +15,19 @@ import pandas as pd
 import pytest
 
 from hierchoice import ChoicePanel, DataError, SimAttribute, SpecError, ferry_scenario, simulate_panel
+from hierchoice.diagnostics.predictive import (
+    fixed_taste_spec,
+    hit_rate,
+    holdout_split,
+    holdout_validation,
+    posterior_choice_probabilities,
+    ppc_shares,
+    prior_predictive,
+    reliability,
+    score_tasks,
+)
 from hierchoice.inference.results import ChoiceFit
 from hierchoice.model.build import model_layout
-from hierchoice.diagnostics.predictive import (
-    fixed_taste_spec, hit_rate, holdout_split, holdout_validation, posterior_choice_probabilities, ppc_shares,
-    prior_predictive, reliability, score_tasks,
-)
 from hierchoice.spec import Spec
 
 LEVELS = np.round(np.linspace(-3, 3, 25), 3).tolist()
@@ -112,8 +119,9 @@ def test_reliability_is_calibrated_with_true_tastes_and_not_when_overconfident()
     top = over.iloc[-1]
     assert top["mean_predicted"] > 0.9
     assert top["observed"] < top["mean_predicted"] - 4 * top["se"]
+    fit = _fit_with_tastes(panel, truth[None, None])
     with pytest.raises(SpecError, match="bins"):
-        reliability(_fit_with_tastes(panel, truth[None, None]), bins=0)
+        reliability(fit, bins=0)
 
 
 # --------------------------------------------------------------------------- posterior-predictive shares
@@ -152,13 +160,20 @@ def test_ppc_shares_cover_the_truth_and_flag_a_missing_constant() -> None:
     good = ppc_shares(_fit_with_tastes(panel, _around(truth, 0.05, seed=2, draws=100)), draws=200, seed=1)
     assert len(good) == 3 + 3  # three alternatives, three deck levels
     spread = (good["eti_high"] - good["eti_low"]) / (2 * 1.645)  # the 90 % interval in replicated SDs
-    assert np.all(np.abs(good["observed"] - good["replicated_mean"]) < 5 * spread)
+    # the observed share is a draw from (near) the posterior predictive distribution, so each standardised
+    # difference is about N(0, 1) or narrower (posterior predictive p-values are conservative; Meng 1994, Annals
+    # of Statistics 22(3)). 3.14 = scipy.stats.norm.isf(0.01 / 12): false-alarm rate <= 1 % over the 6 shares
+    # (two-sided, Bonferroni)
+    assert np.all(np.abs(good["observed"] - good["replicated_mean"]) < 3.14 * spread)
     # drop the constants from the posterior: the model now under-predicts option "a" badly
     wrong = truth.copy()
     wrong[:, [panel.attributes.index("asc:a"), panel.attributes.index("asc:b")]] = 0.0
     bad = ppc_shares(_fit_with_tastes(panel, _around(wrong, 0.05, seed=2, draws=100)), draws=200, seed=1)
     row = bad[(bad["statistic"] == "alternative") & (bad["level"] == "a")].iloc[0]
     assert row["outside"] and row["observed"] > row["eti_high"] and row["p_value"] == 0.0
+    # the same line as above flags it (negative control of the 3.14-SD check)
+    bad_spread = (row["eti_high"] - row["eti_low"]) / (2 * 1.645)
+    assert abs(row["observed"] - row["replicated_mean"]) > 3.14 * bad_spread
 
 
 # --------------------------------------------------------------------------- holdout split and the fixed-taste spec
@@ -243,9 +258,9 @@ def test_in_sample_checks_on_a_real_fit(holdout: Any) -> None:
     assert shares["replicated_mean"].sum() == pytest.approx(1.0)
     rows = score_tasks(fit, holdout.test)
     assert len(rows) == holdout.test.n_tasks and (rows["lpd"] < 0).all()
+    other, _, _ = _sim([SimAttribute("x1", levels=LEVELS, mean=0.0), SimAttribute("x2", levels=LEVELS)],
+                       n_persons=70, n_tasks=2, seed=1)
     with pytest.raises(DataError, match="no posterior tastes"):
-        other, _, _ = _sim([SimAttribute("x1", levels=LEVELS, mean=0.0), SimAttribute("x2", levels=LEVELS)],
-                           n_persons=70, n_tasks=2, seed=1)
         score_tasks(fit, other)
 
 

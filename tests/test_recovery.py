@@ -2,8 +2,10 @@
 
 import numpy as np
 import pytest
+from scipy import stats
 
 import hierchoice as hc
+from hierchoice.diagnostics.checks import parameter_diagnostics
 
 pytestmark = pytest.mark.slow
 
@@ -36,6 +38,23 @@ def _coverage(result, truth, prob=0.9):
     return hits, total, missed
 
 
+def _shifted_truth(result, truth, k=3.0):
+    """The truth moved k posterior SDs up, parameter by parameter: what a fit with a scale or location bug sees."""
+    post = result.posterior
+    out = dict(truth)
+    out["taste_mean"] = truth["taste_mean"] + k * post["taste_mean"].std(("chain", "draw")).to_pandas()
+    out["taste_sd"] = truth["taste_sd"] + k * post["taste_sd"].std(("chain", "draw")).to_pandas()
+    if "taste_corr" in post:
+        sd = post["taste_corr"].std(("chain", "draw")).to_pandas().to_numpy()
+        out["taste_corr"] = truth["taste_corr"] + k * sd
+    return out
+
+
+def _allowed_misses(total, prob=0.9, alarm=0.01):
+    """The most misses of ``total`` calibrated ``prob`` intervals with P(more) <= ``alarm`` (binomial quantile)."""
+    return int(stats.binom.ppf(1 - alarm, total, 1 - prob))
+
+
 def _person_correlation(result, truth):
     est = result.posterior["person_taste"].mean(("chain", "draw")).to_pandas()
     true = truth["person_taste"].loc[est.index, est.columns]
@@ -62,8 +81,15 @@ def test_recovery(case):
     panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
     result = hc.fit(panel, draws=500, tune=500, chains=2, seed=3, progressbar=False)
     hits, total, missed = _coverage(result, sim.truth)
-    # 90 % intervals: with a handful of parameters at most one miss is expected by chance
-    assert total - hits <= 1, missed
+    # 90 % intervals of a calibrated posterior: misses ~ Binomial(total, 0.1) (approximately: the intervals share
+    # one posterior). Allowed: the 99 % binomial quantile, so the false-alarm rate is <= 1 % per case
+    # (6 parameters: 3 misses allowed, P(more) = 0.13 %; 4: 2, 0.37 %; 9: 3, 0.83 %; scipy.stats.binom).
+    allowed = _allowed_misses(total)
+    assert total - hits <= allowed, missed
+    # negative control: a truth 3 posterior SDs away from each estimate (a location or scale bug) is missed by
+    # more intervals than allowed
+    shifted_hits, _, _ = _coverage(result, _shifted_truth(result, sim.truth))
+    assert total - shifted_hits > allowed
     for name, r in _person_correlation(result, sim.truth).items():
         # each person answers ~10 tasks, so person tastes are shrunk but must track the truth
         assert r > 0.5, (name, r)
@@ -89,4 +115,10 @@ def test_stochastic_advi_population_means_near_nuts_on_b1():
     rows = [r for r in n.index if r[0] in ("population_mean", "population_sd")]
     z = ((a.loc[rows, "mean"] - n.loc[rows, "mean"]) / n.loc[rows, "sd"]).abs()
     print("ADVI vs NUTS, |difference| in NUTS posterior SDs:", z.round(2).to_dict())
+    # The line 2 is the requirement, not a chance bound; the chance part of z is the Monte Carlo error of the two
+    # means: NUTS's MCSE = SD / sqrt(ESS) (ESS >= 100, the checks' fail line, asserted: <= 0.1 posterior SDs) and
+    # ADVI's 500 independent draws (<= 0.045 SDs), together <= 0.11 SDs. With the largest z measured in nine runs
+    # (1.72, see above) the chance of crossing 2 is P(N(0, 0.11^2) > 0.28) = 0.5 % (normal): the false-alarm rate.
+    ess = parameter_diagnostics(nuts.idata).loc[rows, "ess_bulk"]
+    assert (ess >= 100).all(), ess
     assert (z < 2).all(), z

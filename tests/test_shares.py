@@ -7,6 +7,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
+from test_tastes import fake_fit, small_panel
 
 import hierchoice as hc
 from hierchoice import DataError, FitError, SimAttribute, SpecError
@@ -18,7 +19,6 @@ from hierchoice.analysis.shares import (
     sensitivity,
     share_draws,
 )
-from test_tastes import fake_fit, small_panel
 
 BETA = {"price": -0.8, "time": -0.05}
 ASC = {"asc:a": 0.5, "asc:c": -0.3}  # reference "b" (simulate_panel: the first alternative without a constant)
@@ -177,8 +177,9 @@ def test_categorical_levels_are_coded_like_the_panel() -> None:
     ],
 )
 def test_bad_market_tables_name_the_problem(change: Any, pattern: str) -> None:
+    fit, market = _fixed_fit(), change(MARKET.copy())
     with pytest.raises(DataError, match=pattern):
-        market_design(_fixed_fit(), change(MARKET.copy()))
+        market_design(fit, market)
 
 
 def test_unknown_level_and_extrapolation() -> None:
@@ -232,13 +233,13 @@ def test_person_modes_and_errors() -> None:
         predict_shares(fit, market, persons="panel")
     with pytest.raises(SpecError, match="persons = 'everyone'"):
         predict_shares(fit, market, persons="everyone")
+    sim = hc.ferry_scenario(n_persons=20, seed=2)
+    panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
+    ferry = fake_fit(panel, {n: 0.1 for n in panel.attributes}, draws=2)
+    ferry_market = pd.DataFrame({"option": ["ferry_a", "none"], "fare": [3.0, None], "crossing_time": [20, None],
+                                 "departures_per_hour": [2, None], "deck": ["open", None]})
     with pytest.raises(SpecError, match="numeric attribute"):
-        sim = hc.ferry_scenario(n_persons=20, seed=2)
-        panel = hc.ChoicePanel.from_frame(sim.data, sim.spec)
-        ferry = fake_fit(panel, {n: 0.1 for n in panel.attributes}, draws=2)
-        elasticities(ferry, pd.DataFrame({"option": ["ferry_a", "none"], "fare": [3.0, None],
-                                          "crossing_time": [20, None], "departures_per_hour": [2, None],
-                                          "deck": ["open", None]}), attribute="deck")
+        elasticities(ferry, ferry_market, attribute="deck")
 
 
 def test_shares_command_reads_a_folder_and_writes_csv(tmp_path: Any) -> None:

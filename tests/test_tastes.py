@@ -18,9 +18,6 @@ import xarray as xr
 from scipy import stats
 
 from hierchoice import ChoicePanel, FitError, SimAttribute, SpecError, simulate_panel
-from hierchoice.inference.sampling import _tidy_idata
-from hierchoice.inference.results import ChoiceFit
-from hierchoice.model.build import model_layout
 from hierchoice.analysis.tastes import (
     person_latent_draws,
     person_tastes,
@@ -30,6 +27,9 @@ from hierchoice.analysis.tastes import (
     summarize_draws,
     taste_shrinkage,
 )
+from hierchoice.inference.results import ChoiceFit
+from hierchoice.inference.sampling import _tidy_idata
+from hierchoice.model.build import model_layout
 
 # --------------------------------------------------------------------------- fake posteriors
 
@@ -129,21 +129,37 @@ def fake_fit(
 # --------------------------------------------------------------------------- summaries
 
 
-def test_summarize_draws_matches_arviz_hdi_and_numpy_quantiles() -> None:
+def test_summarize_draws_intervals_of_known_distributions() -> None:
     rng = np.random.default_rng(3)
-    values = rng.normal(size=(2, 500, 3)) * np.array([1.0, 2.0, 0.5])
-    da = xr.DataArray(values, dims=("chain", "draw", "attribute"), coords={"attribute": ["a", "b", "c"]})
+    n = 20_000  # per chain, 2 chains
+    scale = np.array([1.0, 2.0, 0.5])
+    values = np.concatenate([rng.normal(size=(2, n, 3)) * scale,
+                             rng.exponential(scale=1 / 1.5, size=(2, n, 1))], axis=-1)  # rate lambda = 1.5
+    da = xr.DataArray(values, dims=("chain", "draw", "attribute"), coords={"attribute": ["a", "b", "c", "e"]})
     table = summarize_draws(da, prob=0.8).set_index("attribute")
-    ref_hdi = az.hdi(da.to_dataset(name="x"), hdi_prob=0.8)["x"]  # arviz 0.23 reference implementation
     for i, name in enumerate("abc"):
         flat = values[..., i].ravel()
+        # numpy's quantile and the sample median and SD are the definitions of the other columns
         assert table.loc[name, "eti_low"] == pytest.approx(np.quantile(flat, 0.1))
         assert table.loc[name, "eti_high"] == pytest.approx(np.quantile(flat, 0.9))
-        assert table.loc[name, "hdi_low"] == pytest.approx(float(ref_hdi.sel(attribute=name, hdi="lower")))
         assert table.loc[name, "median"] == pytest.approx(np.median(flat))
         assert table.loc[name, "sd"] == pytest.approx(flat.std(ddof=1))
-    # a symmetric distribution: both intervals near +-1.2816 sd (scipy.stats.norm.ppf(0.9))
-    assert table.loc["b", "eti_high"] == pytest.approx(2.0 * stats.norm.ppf(0.9), rel=0.15)
+        # the 80 % HDI of N(0, s^2) is +-z s with z = Phi^-1(0.9) = 1.2816 (scipy.stats.norm.ppf). Tolerance 0.06 s:
+        # an end estimated from 40,000 draws has an SD of about sqrt(0.1 * 0.9 / 40,000) / phi(z) = 0.0085 s
+        # (the SD of a sample quantile; Serfling 1980, Approximation Theorems of Mathematical Statistics, 2.3.3),
+        # so 0.06 s is 7 SDs (false-alarm rate below 1e-9 per end, normal approximation)
+        z = stats.norm.ppf(0.9)
+        assert table.loc[name, "hdi_low"] == pytest.approx(-z * scale[i], abs=0.06 * scale[i])
+        assert table.loc[name, "hdi_high"] == pytest.approx(z * scale[i], abs=0.06 * scale[i])
+    # the 80 % HDI of an exponential with rate 1.5 is [0, -ln(0.2) / 1.5] = [0, 1.073] (the density falls from 0).
+    # SD of the upper end about sqrt(0.8 * 0.2 / 40,000) / f(1.073) = 0.0067 with f(1.073) = 1.5 * 0.2 = 0.3;
+    # tolerance 0.04 is 6 SDs (false-alarm rate below 1e-8); the lower end is the smallest draw, within 1e-3 of 0
+    assert table.loc["e", "hdi_low"] == pytest.approx(0.0, abs=1e-3)
+    assert table.loc["e", "hdi_high"] == pytest.approx(-np.log(0.2) / 1.5, abs=0.04)
+    # negative control: the equal-tailed interval [q10, q90] = [0.070, 1.535] is not the HDI; a summary that
+    # returned it as the HDI would fail the two lines above
+    assert table.loc["e", "eti_low"] == pytest.approx(-np.log(0.9) / 1.5, abs=0.01)
+    assert table.loc["e", "eti_high"] == pytest.approx(-np.log(0.1) / 1.5, abs=0.04)
     robust = summarize_draws(da, robust=True)
     assert robust["mean"].isna().all() and robust["median"].notna().all()
 
