@@ -270,8 +270,8 @@ def _model_gradient_fn(model, mode):
 
 def kernels(size_name: str) -> dict:
     """Milliseconds per log-posterior + gradient at ``size_name``: reference kernels and the model's graphs."""
-    from hierchoice.model.likelihood import difference_data
     from hierchoice.model.build import build_model, model_layout
+    from hierchoice.model.likelihood import difference_data
 
     size = SIZES[size_name]
     sim, panel = _panel(size)

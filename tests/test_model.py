@@ -1,7 +1,6 @@
 """The PyMC model against outside references: quadrature of the panel integral and statsmodels' conditional logit."""
 
 import numpy as np
-import pandas as pd
 import pymc as pm
 import pytest
 from numpy.polynomial.hermite_e import hermegauss

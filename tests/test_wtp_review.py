@@ -19,12 +19,12 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import integrate, stats
+from test_tastes import fake_fit, small_panel
 
 import hierchoice as hc
 from hierchoice import SimAttribute
 from hierchoice.analysis.wtp import mean_wtp_across_people, person_wtp, population_wtp, taste_units
 from hierchoice.report import write_report
-from test_tastes import fake_fit, small_panel
 
 # --------------------------------------------------------------------------- item 4: references
 
