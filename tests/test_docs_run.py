@@ -88,11 +88,16 @@ def test_getting_started_runs_top_to_bottom(page: dict[str, Any]) -> None:
     assert len(python_blocks(DOCS / "getting_started.md")) == len(page["shown"]) >= 9
 
 
-def test_api_page_blocks_run() -> None:
-    # docs/api.md is generated reference (eval-rst blocks); any python block added to it must run too
+def test_api_page_blocks_run(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # docs/api.md is mostly generated reference (eval-rst blocks); its python blocks run in order, in an empty folder
+    monkeypatch.chdir(tmp_path)
     namespace: dict[str, Any] = {}
-    for source in python_blocks(DOCS / "api.md"):
+    blocks = python_blocks(DOCS / "api.md")
+    assert blocks  # the notebook example
+    for source in blocks:
         run_cell(source, namespace)
+    # the checks saved into a new folder, then the report written into the same folder (both hierchoice's own)
+    assert (tmp_path / "results" / "diagnostics.json").is_file() and (tmp_path / "results" / "report.html").is_file()
 
 
 def test_compile_is_announced_with_its_time(page: dict[str, Any]) -> None:

@@ -3,7 +3,7 @@
 Every posterior here is built by hand (``fake_fit`` of ``test_tastes``: population parameters chosen per draw, no
 sampling), so the reference can be evaluated draw by draw from the same parameters, independently of the package:
 
-* the implied mean, median and SD of each taste that ``population.csv`` (``population_summary``) and
+* the implied mean, median and SD of each taste that ``population_tastes.csv`` (``population_summary``) and
   ``population_tastes`` write, against ``scipy.stats.lognorm`` / ``scipy.stats.norm`` (scipy 1.x);
 * WTP across people: a normal attribute over a fixed price (a normal ratio), a normal attribute over a lognormal
   price (the closed-form mean :math:`E[x e^{-z}] = (E x - \\mathrm{cov}(x, z))\\,e^{-E z + \\mathrm{var}\\,z / 2}`),
@@ -50,6 +50,15 @@ def _four_taste_fit(**kwargs: Any) -> hc.ChoiceFit:
     return fake_fit(small_panel(attrs, model={"price": "price"}), MEANS, SDS, **kwargs)
 
 
+
+_PARAM = {"population_mean": "taste_mean", "population_sd": "taste_sd"}
+
+
+def _by_row(table: pd.DataFrame) -> pd.DataFrame:
+    """The population table indexed ``quantity[attribute]``, the parameters under their posterior names
+    (``taste_mean``, ``taste_sd``)."""
+    return table.set_axis([f"{_PARAM.get(q, q)}[{a}]" for q, a in zip(table["quantity"], table["attribute"])])
+
 def _scipy_taste(name: str, mu: np.ndarray, sd: float) -> Any:
     """The distribution across people of one taste, as a frozen scipy.stats distribution (one per draw)."""
     if name in ("price", "quality"):
@@ -59,9 +68,9 @@ def _scipy_taste(name: str, mu: np.ndarray, sd: float) -> Any:
 
 
 def test_population_summary_moments_equal_scipy_per_draw() -> None:
-    """The rows population.csv gets from population_summary: each posterior draw's moment from scipy.stats."""
+    """The rows population_tastes.csv gets from population_summary: each posterior draw's moment from scipy.stats."""
     fit = _four_taste_fit(chains=2, draws=60, spread=0.1, seed=3)
-    table = hc.population_summary(fit, prob=0.8)
+    table = _by_row(hc.population_summary(fit, prob=0.8))
     mu = fit.posterior["taste_mean"]
     for name, sign in (("price", -1.0), ("quality", 1.0)):
         dist = _scipy_taste(name, mu.sel(attribute=name).values.ravel(), SDS[name])
@@ -77,7 +86,10 @@ def test_population_summary_moments_equal_scipy_per_draw() -> None:
     # normal and fixed tastes: the parameters are the mean and SD themselves; no lognormal rows for them
     assert table.loc["taste_mean[time]", "mean"] == pytest.approx(mu.sel(attribute="time").values.mean(), rel=1e-12)
     assert table.loc["taste_sd[time]", "mean"] == pytest.approx(SDS["time"], rel=1e-12)
-    assert "mean_across_people[time]" not in table.index and "taste_sd[wifi]" not in table.index
+    # a normal taste's mean across people is its mean parameter; a fixed taste has no SD row
+    assert table.loc["mean_across_people[time]", "mean"] == pytest.approx(table.loc["taste_mean[time]", "mean"],
+                                                                          rel=1e-12)
+    assert "taste_sd[wifi]" not in table.index
     # negative control: the mean across people is not the median (a dropped sigma^2 / 2 is seen)
     assert abs(table.loc["mean_across_people[quality]", "mean"]
                - table.loc["median_across_people[quality]", "mean"]) > 0.1

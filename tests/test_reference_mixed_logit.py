@@ -180,8 +180,17 @@ def _simulated() -> tuple[hc.SimulatedPanel, PanelMixedLogit]:
     return sim, PanelMixedLogit(X, chosen, person, [1], nodes=30)
 
 
+
+_PARAM = {"population_mean": "taste_mean", "population_sd": "taste_sd"}
+
+
+def _by_row(table: pd.DataFrame) -> pd.DataFrame:
+    """The population table indexed ``quantity[attribute]``, the parameters under their posterior names
+    (``taste_mean``, ``taste_sd``)."""
+    return table.set_axis([f"{_PARAM.get(q, q)}[{a}]" for q, a in zip(table["quantity"], table["attribute"])])
+
 def _posterior_rows(result: hc.ChoiceFit, names: tuple[str, ...], random: tuple[str, ...]) -> pd.DataFrame:
-    table = hc.population_summary(result)
+    table = _by_row(hc.population_summary(result))
     rows = [f"taste_mean[{n}]" for n in names] + [f"taste_sd[{n}]" for n in random]
     return table.loc[rows, ["mean", "sd"]]
 

@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .._io import atomic_write_text
+from .._io import atomic_write_text, make_folder
 from .._records import checks_frame, jsonable, overall_verdict
 from ..exceptions import FitError
 from ..inference.results import ChoiceFit, FitLike, as_fit, lend
@@ -250,7 +250,9 @@ class Diagnostics:
         """
         from .plots import write_diagnostic_plots
 
-        target = Path(folder)
+        # a folder hierchoice marks as its own (or an existing results folder), so that the report or a later
+        # save may write into it too; a folder holding the user's own files is refused, as everywhere
+        target = make_folder(folder, "results")
         predictive = self.predictive
         self.loo  # noqa: B018 - computed before the report is assembled
         with _quiet():
