@@ -12,11 +12,10 @@ equal-tailed intervals. Fits are shared through module-scoped fixtures; the long
 
 from __future__ import annotations
 
-import re
-
 import contextlib
 import io
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
