@@ -140,12 +140,11 @@ def _label_column(result: ChoiceFit, frame: pd.DataFrame) -> str:
 def _design_range(result: ChoiceFit, k: int) -> tuple[float, float] | None:
     """The range of term ``k`` over the available, non-opt-out alternatives of the fitted panel."""
     panel = result.panel
-    use = panel.available & panel.task_mask[:, :, None]
+    cells = panel.cells  # the real rows: available alternatives of real tasks only
     opt_out = result.spec.data.opt_out
+    values = cells.x[:, k]
     if opt_out is not None and opt_out in panel.alternatives:
-        use = use.copy()
-        use[:, :, panel.alternatives.index(opt_out)] = False
-    values = panel.X[..., k][use]
+        values = values[cells.alt != panel.alternatives.index(opt_out)]
     return (float(values.min()), float(values.max())) if values.size else None
 
 

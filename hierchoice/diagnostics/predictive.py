@@ -21,7 +21,9 @@ plausible choice behaviour (Gabry, Simpson, Vehtari, Betancourt & Gelman 2019,
 JRSS A 182(2))?
 
 Probabilities are logit probabilities given each posterior draw of a person's
-tastes (:func:`hierchoice.likelihood.choice_probabilities`), averaged over draws:
+tastes, averaged over draws; they are computed on the panel's real rows only
+(:mod:`hierchoice.diagnostics.predictive_rows`: memory linear in the available
+alternatives of the real tasks, draws taken in blocks):
 
 .. math::
 
@@ -47,8 +49,20 @@ from .._display import Progress, html_table, status, want_progress
 from ..data.panel import ChoicePanel
 from ..exceptions import DataError, SpecError, first_few
 from ..inference.results import thin_draws
-from ..model.likelihood import cell_differences, choice_probabilities, task_loglik_cells
+from ..model.likelihood import cell_differences, task_loglik_cells
 from ..spec import Spec, load_spec
+from .predictive_rows import (
+    Rows,
+    counts,
+    draw_block,
+    level_codes,
+    mean_probabilities,
+    replicate_choices,
+    row_probabilities,
+    share_statistics,
+    task_hits,
+    task_mask,
+)
 
 __all__ = [
     "taste_draws",
@@ -63,10 +77,6 @@ __all__ = [
     "HoldoutResult",
     "holdout_validation",
 ]
-
-#: How many (draw, person, task, alternative) cells one vectorised block may hold.
-_BLOCK_CELLS = 4_000_000
-
 
 # --------------------------------------------------------------------------- helpers
 
@@ -93,33 +103,16 @@ def taste_draws(result: Any, panel: ChoicePanel | None = None, *, max_draws: int
     return values.reshape((-1,) + values.shape[2:])
 
 
-def _block(panel: ChoicePanel) -> int:
-    cells = max(1, panel.X.shape[0] * panel.X.shape[1] * panel.X.shape[2])
-    return max(1, _BLOCK_CELLS // cells)
-
-
-def _probabilities(panel: ChoicePanel, beta: np.ndarray) -> np.ndarray:
-    """Logit probabilities (..., person, task, alternative); padded tasks (nothing available) give 0."""
-    with np.errstate(invalid="ignore"):  # a padded task's max over no alternative is -inf; its cells are 0
-        return choice_probabilities(panel.X, panel.available, beta)
-
-
-def _mean_probabilities(panel: ChoicePanel, draws: np.ndarray) -> np.ndarray:
-    """Posterior-mean logit probabilities, shape (person, task, alternative); NaN on padded tasks."""
-    total = np.zeros(panel.X.shape[:3])
-    step = _block(panel)
-    for s0 in range(0, draws.shape[0], step):
-        total += _probabilities(panel, draws[s0 : s0 + step]).sum(axis=0)
-    prob = total / draws.shape[0]
-    prob[~panel.task_mask] = np.nan
-    return prob
-
-
-def _prob_array(panel: ChoicePanel, prob: np.ndarray) -> xr.DataArray:
+def _prob_array(panel: ChoicePanel, rows: Rows, row_prob: np.ndarray) -> xr.DataArray:
+    """The (person, task, alternative) output of row probabilities: 0 where unavailable, NaN on padded tasks."""
+    cells = panel.cells
+    n_t = max(int(cells.position.max(initial=-1)) + 1, 1)
+    prob = np.zeros((panel.n_persons, n_t, len(panel.alternatives)))
+    prob[~task_mask(panel, n_t)] = np.nan
+    prob[rows.owner, cells.position[rows.task], cells.alt] = row_prob
     return xr.DataArray(
         prob, dims=("person", "task", "alternative"),
-        coords={"person": list(panel.persons), "task": np.arange(prob.shape[1]),
-                "alternative": list(panel.alternatives)},
+        coords={"person": list(panel.persons), "task": np.arange(n_t), "alternative": list(panel.alternatives)},
         name="probability",
     )
 
@@ -142,21 +135,16 @@ def posterior_choice_probabilities(result: Any, *, panel: ChoicePanel | None = N
         :math:`\bar P_{ntj}`; 0 for unavailable alternatives, NaN for padded tasks.
     """
     panel = result.panel if panel is None else panel
-    return _prob_array(panel, _mean_probabilities(panel, taste_draws(result, panel, max_draws=max_draws)))
+    rows = Rows.of(panel)
+    return _prob_array(panel, rows, mean_probabilities(panel, rows, taste_draws(result, panel, max_draws=max_draws)))
 
 
-def _task_hits(prob: np.ndarray, panel: ChoicePanel) -> np.ndarray:
-    """Per-task hit, shape (person, task): 1 if the chosen alternative has the highest probability.
-
-    Ties at the top share the hit (a tie between k alternatives scores 1/k when the
-    chosen one is among them): the expected score of breaking ties at random. NaN on
-    padded tasks.
-    """
-    p = np.where(panel.available, np.nan_to_num(prob, nan=0.0), -np.inf)
-    top = p >= p.max(axis=-1, keepdims=True) - 1e-12
-    c = np.clip(panel.chosen, 0, None)
-    hit = np.take_along_axis(top, c[:, :, None], axis=2)[..., 0] / np.maximum(top.sum(axis=-1), 1)
-    return np.where(panel.task_mask, hit, np.nan)
+def _row_prob(result: Any, panel: ChoicePanel, rows: Rows, probabilities: xr.DataArray | None) -> np.ndarray:
+    """Posterior-mean row probabilities: computed, or read from a given (person, task, alternative) array."""
+    if probabilities is None:
+        return mean_probabilities(panel, rows, taste_draws(result, panel))
+    cells = panel.cells
+    return np.nan_to_num(np.asarray(probabilities.values)[rows.owner, cells.position[rows.task], cells.alt], nan=0.0)
 
 
 def hit_rate(result: Any, *, panel: ChoicePanel | None = None,
@@ -178,9 +166,8 @@ def hit_rate(result: Any, *, panel: ChoicePanel | None = None,
         tasks of 1 / available alternatives); ``lift`` (their ratio); ``n_tasks``.
     """
     panel = result.panel if panel is None else panel
-    prob = (posterior_choice_probabilities(result, panel=panel) if probabilities is None else probabilities).values
-    hits = _task_hits(prob, panel)
-    rate = float(np.nanmean(hits))
+    rows = Rows.of(panel)
+    rate = float(np.mean(task_hits(_row_prob(result, panel, rows, probabilities), rows)))
     chance = panel.chance_rate
     return pd.Series({"hit_rate": rate, "chance_rate": chance, "lift": rate / chance, "n_tasks": panel.n_tasks},
                      name="hit_rate")
@@ -205,11 +192,10 @@ def reliability(result: Any, *, bins: int = 10, panel: ChoicePanel | None = None
     """
     whole_number(bins, "reliability(bins=...)")
     panel = result.panel if panel is None else panel
-    prob = (posterior_choice_probabilities(result, panel=panel) if probabilities is None else probabilities).values
-    cells = panel.available & panel.task_mask[:, :, None]
-    chosen = panel.chosen[:, :, None] == np.arange(panel.X.shape[2])[None, None, :]
-    p = prob[cells]
-    y = chosen[cells].astype(float)
+    rows = Rows.of(panel)
+    p = _row_prob(result, panel, rows, probabilities)
+    y = np.zeros(p.size)
+    y[rows.chosen_row] = 1.0
     idx = np.minimum((p * bins).astype(int), bins - 1)
     rows = []
     for b in range(bins):
@@ -225,67 +211,6 @@ def reliability(result: Any, *, bins: int = 10, panel: ChoicePanel | None = None
 
 
 # --------------------------------------------------------------------------- posterior-predictive shares
-
-
-def _level_codes(panel: ChoicePanel) -> dict[str, tuple[list[str], np.ndarray]]:
-    """For each categorical attribute: its levels and each alternative's level index (-1: none).
-
-    Returns ``{attribute: (levels, codes)}`` with ``codes`` of shape (person, task,
-    alternative); level 0 is the base. The opt-out, unavailable alternatives and
-    padded tasks have no level.
-    """
-    out: dict[str, tuple[list[str], np.ndarray]] = {}
-    spec = panel.spec
-    real = panel.available & panel.task_mask[:, :, None]
-    if spec.data.opt_out is not None and spec.data.opt_out in panel.alternatives:
-        real = real.copy()
-        real[:, :, panel.alternatives.index(spec.data.opt_out)] = False
-    sources: dict[str, list[int]] = {}
-    for k, t in enumerate(panel.terms):
-        if t.kind in ("dummy", "effects"):
-            sources.setdefault(t.source, []).append(k)
-    for source, ks in sources.items():
-        attr = spec.attributes.get(source)
-        base = attr.base if attr is not None and attr.base is not None else "base"
-        levels = [str(base)] + [str(panel.terms[k].level) for k in ks]
-        codes = np.full(panel.X.shape[:3], -1, dtype=np.int64)
-        cols = panel.X[..., ks]  # (P, T, J, L-1)
-        is_level = cols == 1.0
-        if panel.terms[ks[0]].kind == "effects":
-            is_base = np.all(cols == -1.0, axis=-1)
-        else:
-            is_base = ~is_level.any(axis=-1)
-        codes[is_base] = 0
-        for i in range(len(ks)):
-            codes[is_level[..., i]] = i + 1
-        codes[~real] = -1
-        out[source] = (levels, codes)
-    return out
-
-
-def _share_statistics(choice: np.ndarray, panel: ChoicePanel,
-                      levels: Mapping[str, tuple[list[str], np.ndarray]]) -> np.ndarray:
-    """Choice shares of a (replicate, person, task) array of chosen indices, shape (replicate, statistic).
-
-    Statistics: the share of each alternative, then for each categorical attribute
-    the share of tasks whose chosen alternative has each level (over all real tasks).
-    """
-    mask = panel.task_mask[None]
-    n = panel.task_mask.sum()
-    n_j = panel.X.shape[2]
-    cols = [((choice == j) & mask).sum(axis=(1, 2)) / n for j in range(n_j)]
-    c = np.clip(choice, 0, None)
-    for names, codes in levels.values():
-        picked = np.take_along_axis(np.broadcast_to(codes, choice.shape + (n_j,)), c[..., None], axis=-1)[..., 0]
-        cols += [((picked == i) & mask).sum(axis=(1, 2)) / n for i in range(len(names))]
-    return np.stack(cols, axis=-1)
-
-
-def _replicate_choices(prob: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """One logit choice per task from probabilities of shape (..., alternative)."""
-    cum = np.cumsum(prob, axis=-1)
-    u = rng.random(prob.shape[:-1] + (1,)) * cum[..., -1:]
-    return np.minimum((cum < u).sum(axis=-1), prob.shape[-1] - 1)
 
 
 def ppc_shares(result: Any, *, draws: int = 200, hdi_prob: float = 0.9, prob: Any = NOT_GIVEN, random_seed: int = 0, seed: Any = NOT_GIVEN,
@@ -312,16 +237,17 @@ def ppc_shares(result: Any, *, draws: int = 200, hdi_prob: float = 0.9, prob: An
         raise SpecError(f"ppc_shares(prob=...) must be in (0, 1), got {prob!r}.")
     whole_number(draws, "ppc_shares(draws=...)", minimum=2)
     panel = result.panel if panel is None else panel
+    rows = Rows.of(panel)
     betas = taste_draws(result, panel, max_draws=draws)
     rng = np.random.default_rng(seed)
-    levels = _level_codes(panel)
+    levels = level_codes(panel)
     reps = []
-    step = _block(panel)
+    step = draw_block(panel)
     for s0 in range(0, betas.shape[0], step):
-        p = _probabilities(panel, betas[s0 : s0 + step])
-        reps.append(_share_statistics(_replicate_choices(p, rng), panel, levels))
+        p = row_probabilities(panel, rows, betas[s0 : s0 + step])
+        reps.append(share_statistics(replicate_choices(p, rows, rng), panel, levels))
     rep = np.concatenate(reps, axis=0)
-    observed = _share_statistics(panel.chosen[None], panel, levels)[0]
+    observed = share_statistics(rows.chosen_row[None], panel, levels)[0]
     names: list[tuple[str, str, str]] = [("alternative", "", a) for a in panel.alternatives]
     for attr, (lv, _) in levels.items():
         names += [("level", attr, lvl) for lvl in lv]
@@ -379,20 +305,19 @@ def prior_predictive(panel: ChoicePanel, spec: Spec | Mapping[str, Any] | str | 
     beta = prior["person_taste"].transpose("chain", "draw", "person", "attribute").values
     beta = beta.reshape((-1,) + beta.shape[2:])
     rng = np.random.default_rng(seed + 1)
-    mask = panel.task_mask
-    n = mask.sum()
-    n_j = panel.X.shape[2]
+    rows = Rows.of(panel)
+    n = panel.n_tasks
+    n_j = len(panel.alternatives)
     shares, maxp, near, hits = [], [], [], []
-    step = _block(panel)
+    step = draw_block(panel)
     for s0 in range(0, beta.shape[0], step):
-        p = _probabilities(panel, beta[s0 : s0 + step])  # (s, P, T, J)
-        c = _replicate_choices(p, rng)
-        shares.append(np.stack([((c == j) & mask).sum(axis=(1, 2)) / n for j in range(n_j)], axis=-1))
-        top = p.max(axis=-1)
-        maxp.append(np.where(mask, top, 0).sum(axis=(1, 2)) / n)
-        near.append(((top > 0.99) & mask).sum(axis=(1, 2)) / n)
-        hits.append(np.array([np.nanmean(_task_hits(p_s, panel)) for p_s in p]))
-    observed = np.array([((panel.chosen == j) & mask).sum() / n for j in range(n_j)])
+        p = row_probabilities(panel, rows, beta[s0 : s0 + step])  # (s, row)
+        shares.append(counts(panel.cells.alt[replicate_choices(p, rows, rng)], n_j) / n)
+        top = np.maximum.reduceat(p, rows.starts, axis=1)  # (s, task)
+        maxp.append(top.sum(axis=1) / n)
+        near.append((top > 0.99).sum(axis=1) / n)
+        hits.append(task_hits(p, rows).mean(axis=1))
+    observed = np.bincount(panel.cells.chosen, minlength=n_j) / n
     draw = np.arange(beta.shape[0])
     return xr.Dataset(
         {
@@ -433,20 +358,26 @@ def holdout_split(panel: ChoicePanel, *, tasks: int = 1, method: str = "last",
     whole_number(tasks, "holdout_split(tasks=...)")
     if method not in ("last", "random"):
         raise SpecError(f"holdout_split(method={method!r}) must be 'last' or 'random'.")
-    mask = panel.task_mask
-    n_i = mask.sum(axis=1)
+    cells = panel.cells
+    n_i = np.diff(cells.person_ptr)
     k_i = np.minimum(tasks, n_i - 1)
     if k_i.sum() == 0:
         raise DataError("holdout_split: every person has a single task, so no task can be held out.")
-    held = np.zeros_like(mask)
+    owner = cells.task_owner
     if method == "last":
-        position = np.cumsum(mask, axis=1) - 1  # 0-based rank of each real task within its person
-        held = mask & (position >= (n_i - k_i)[:, None])
+        rank = np.arange(cells.n_tasks) - cells.person_ptr[owner]  # 0-based rank of each task within its person
+        held_task = rank >= (n_i - k_i)[owner]
     else:
         rng = np.random.default_rng(seed)
+        held_task = np.zeros(cells.n_tasks, dtype=bool)
         for i in np.nonzero(k_i)[0]:
-            real = np.nonzero(mask[i])[0]
-            held[i, rng.choice(real, size=int(k_i[i]), replace=False)] = True
+            start = int(cells.person_ptr[i])
+            held_task[start + rng.choice(int(n_i[i]), size=int(k_i[i]), replace=False)] = True
+    # with_tasks takes (person, task) masks and re-packs the padded arrays: these masks are only (person, task)
+    n_t = max(int(cells.position.max(initial=-1)) + 1, 1)
+    mask = task_mask(panel, n_t)
+    held = np.zeros_like(mask)
+    held[owner[held_task], cells.position[held_task]] = True
     train = panel.with_tasks(mask & ~held, f"held out for validation ({method}, {tasks} per person)")
     test = panel.with_tasks(held, f"training tasks (not in the holdout, {method})")
     return train, test
@@ -475,11 +406,12 @@ def fixed_taste_spec(spec: Spec | Mapping[str, Any] | str | Path) -> Spec:
 def _fixed_taste_panel(panel: ChoicePanel, spec: Spec) -> ChoicePanel:
     """The same panel with every term's taste fixed (the model reads each term's taste from the panel)."""
     terms = [replace(t, taste="fixed", sign=None) for t in panel.terms]
-    return ChoicePanel(
-        X=panel.X, available=panel.available, task_mask=panel.task_mask, chosen=panel.chosen,
-        task_ids=panel.task_ids, lag_missing=panel.lag_missing, Z=panel.Z, persons=panel.persons,
-        alternatives=panel.alternatives, terms=terms, covariates=panel.covariates, summary=panel.summary, spec=spec,
+    fixed = ChoicePanel(
+        cells=panel.cells, Z=panel.Z, persons=panel.persons, alternatives=panel.alternatives, terms=terms,
+        covariates=panel.covariates, summary=panel.summary, spec=spec,
     )
+    fixed._dense = panel._dense  # padded arrays already built (if any) are shared, not rebuilt
+    return fixed
 
 
 def score_tasks(result: Any, panel: ChoicePanel, *, max_draws: int | None = None) -> pd.DataFrame:
@@ -504,14 +436,13 @@ def score_tasks(result: Any, panel: ChoicePanel, *, max_draws: int | None = None
     cells = panel.cells  # tasks in np.nonzero(task_mask)'s order
     ll = task_loglik_cells(cell_differences(cells), betas)  # (S, task), linear in the real cells
     lpd = logsumexp(ll, axis=0) - np.log(ll.shape[0])
-    hits = _task_hits(_mean_probabilities(panel, betas), panel)
-    p_idx, t_idx = cells.task_owner, cells.position
+    rows = Rows.of(panel)
     return pd.DataFrame({
-        "person": np.asarray(panel.persons, dtype=object)[p_idx],
+        "person": np.asarray(panel.persons, dtype=object)[cells.task_owner],
         "task": cells.task_id,
         "lpd": lpd,
-        "hit": hits[p_idx, t_idx],
-        "n_available": panel.available.sum(axis=2)[p_idx, t_idx],
+        "hit": task_hits(mean_probabilities(panel, rows, betas), rows),
+        "n_available": np.diff(cells.row_ptr),
     })
 
 
@@ -618,7 +549,7 @@ def holdout_validation(
             rows[name] = {"hit_rate": float(t["hit"].mean()), "mean_lpd": float(t["lpd"].mean()),
                           "n_tasks": len(t)}
             bar.advance()
-    n_avail = test.available.sum(axis=2)[test.task_mask]
+    n_avail = np.diff(test.cells.row_ptr)
     rows["chance"] = {"hit_rate": test.chance_rate, "mean_lpd": float(np.mean(-np.log(n_avail))),
                       "n_tasks": int(n_avail.size)}
     table = pd.DataFrame.from_dict(rows, orient="index")

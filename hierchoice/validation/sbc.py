@@ -38,7 +38,7 @@ import functools
 import math
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -50,7 +50,6 @@ from ..data.panel import ChoicePanel
 from ..diagnostics.checks import population_draws
 from ..exceptions import FitError, SpecError, first_few
 from ..model.build import POPULATION_VARS, build_model
-from ..simulate import draw_choices
 from ..spec import Spec, _positive_int, load_spec
 from .distributed import TaskFailure, run_tasks, task_seed, task_seed_sequence
 from .fitters import (
@@ -97,7 +96,7 @@ def simulate_choices(panel: ChoicePanel, person_taste: np.ndarray, rng: np.rando
     The design (attribute values, availability, tasks, persons, covariates) is kept;
     each real task's choice is drawn from
     :math:`P_{ntj} \propto \exp(x_{ntj}\cdot\beta_n)` over the available alternatives
-    (:func:`hierchoice.simulate.draw_choices`).
+    (the Gumbel draw of :func:`hierchoice.simulate.draw_choices`, on the panel's real rows only).
 
     Parameters
     ----------
@@ -111,13 +110,21 @@ def simulate_choices(panel: ChoicePanel, person_taste: np.ndarray, rng: np.rando
     shape = (panel.n_persons, len(panel.attributes))
     if beta.shape != shape:
         raise SpecError(f"person_taste must have shape (persons, attributes) = {shape}, got {beta.shape}.")
-    utility = np.einsum("ptjk,pk->ptj", panel.X, beta)  # (P, T, J)
-    offered = panel.available & panel.task_mask[:, :, None]
-    chosen = np.where(panel.task_mask, draw_choices(utility, offered, rng), -1).astype(np.int64)
+    cells = panel.cells  # the real rows only: memory linear in them, whatever the spread of tasks per person
+    task = cells.row_task
+    starts = cells.row_ptr[:-1]
+    # the argmax of utility plus i.i.d. Gumbel noise over each task's rows, as in draw_choices
+    total = np.einsum("rk,rk->r", cells.x, beta[cells.task_owner[task]]) + rng.gumbel(size=cells.alt.size)
+    if total.size:
+        best = total >= np.maximum.reduceat(total, starts)[task]
+        first = np.flatnonzero(best)  # the first best row of each task (ties have probability 0)
+        chosen = cells.alt[first[np.searchsorted(first, starts)]]
+    else:
+        chosen = cells.chosen.copy()
     return ChoicePanel(
-        X=panel.X, available=panel.available, task_mask=panel.task_mask, chosen=chosen, task_ids=panel.task_ids,
-        lag_missing=panel.lag_missing, Z=panel.Z, persons=panel.persons, alternatives=panel.alternatives,
-        terms=panel.terms, covariates=panel.covariates, summary=panel.summary, spec=panel.spec,
+        cells=replace(cells, chosen=chosen.astype(np.int64)), Z=panel.Z, persons=panel.persons,
+        alternatives=panel.alternatives, terms=panel.terms, covariates=panel.covariates, summary=panel.summary,
+        spec=panel.spec,
     )
 
 
