@@ -62,7 +62,7 @@ def test_the_folder_is_compact_on_disk(folder):
         assert taste.compression == "gzip" and taste.shuffle
         assert taste.chunks[0] == 1 and taste.chunks[1] <= 100
         assert f["posterior/taste_mean"].dtype == np.float64 and f["posterior/taste_mean"].compression == "gzip"
-        assert f["constant_data/x"].compression == "gzip"
+        assert f["constant_data/row_x"].compression == "gzip"
         assert f["posterior"].attrs["hierchoice_folder_format"] == FOLDER_FORMAT
 
 
@@ -72,8 +72,10 @@ def _write_format1(result, target):
 
     from hierchoice._io import atomic_dir
 
-    groups = {g: getattr(result.idata, g) for g in ("posterior", "sample_stats", "constant_data")}
-    groups["observed_data"] = xr.Dataset({"chosen": result.panel.to_xarray()["chosen"]})
+    groups = {g: getattr(result.idata, g) for g in ("posterior", "sample_stats")}
+    dense = result.panel.to_xarray()  # formats 1 and 2 kept the padded panel arrays
+    groups["constant_data"] = dense.drop_vars(["chosen"])
+    groups["observed_data"] = xr.Dataset({"chosen": dense["chosen"]})
     groups["posterior"] = groups["posterior"].copy()
     groups["posterior"].attrs = results._attrs_for(result)
     with atomic_dir(target, kind="results") as tmp:
@@ -175,3 +177,23 @@ def test_posterior_predictive_needs_person_draws(small):
     panel = hc.ChoicePanel.from_frame(sim.data, spec)
     with pytest.raises(hc.FitError, match="store_person_draws"):  # before any sampling
         hc.fit(panel, spec, draws=10, tune=10, chains=1, seed=1, progressbar=False, posterior_predictive=True)
+
+
+def test_the_folder_keeps_the_panels_real_rows_not_a_padded_grid(small, folder):
+    """Format 3 stores the panel as its real rows (available alternatives of real tasks) with CSR offsets: the
+    reopened panel has the same rows and builds no padded array on the way back (memory linear in the data)."""
+    import h5py
+
+    _, result = small
+    with h5py.File(folder / POSTERIOR_FILE, "r") as f:
+        assert "constant_data/x" not in f and "constant_data/available" not in f  # no (person, task, alt) grid
+        assert f["constant_data/row_x"].shape == result.panel.cells.x.shape
+    loaded = load_fit(folder)
+    assert loaded.panel._dense is None
+    mine, theirs = result.panel.cells, loaded.panel.cells
+    for name in ("x", "alt", "row_ptr", "person_ptr", "chosen", "position", "lag_missing"):
+        np.testing.assert_array_equal(getattr(theirs, name), getattr(mine, name))
+    assert [str(v) for v in theirs.task_id] == [str(v) for v in mine.task_id]
+    # and the padded view built from them on demand equals the fitted panel's
+    np.testing.assert_array_equal(loaded.panel.X, result.panel.X)
+    np.testing.assert_array_equal(loaded.panel.chosen, result.panel.chosen)

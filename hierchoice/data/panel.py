@@ -348,6 +348,41 @@ class ChoicePanel:
         ds.attrs["description"] = "hierchoice panel: padded choice tasks with availability and task masks"
         return ds
 
+    def cells_dataset(self) -> xr.Dataset:
+        """The panel's real rows (:attr:`cells`) and person covariates as an :class:`xarray.Dataset`, nothing padded.
+
+        Dims ``row`` (each available alternative of each real task), ``task`` (real tasks, person after person),
+        ``person``, ``attribute``, ``alternative`` (and ``covariate``); ``row_ptr`` (``task_edge``) and
+        ``person_ptr`` (``person_edge``) are the offsets of :class:`PanelCells`. What a results folder keeps of
+        the panel (:meth:`from_cells_dataset` reads it back).
+        """
+        c = self.cells
+        coords: dict[str, Any] = {"person": list(self.persons), "alternative": list(self.alternatives),
+                                  "attribute": list(self.attributes)}
+        data_vars: dict[str, Any] = {
+            "row_x": (("row", "attribute"), c.x), "row_alternative": (("row",), c.alt),
+            "row_ptr": (("task_edge",), c.row_ptr), "person_ptr": (("person_edge",), c.person_ptr),
+            "task_chosen": (("task",), c.chosen), "task_position": (("task",), c.position),
+            "task_id": (("task",), np.array([_label(v) for v in c.task_id], dtype=str)),
+            "task_lag_missing": (("task",), c.lag_missing),
+        }
+        if self.covariates:
+            coords["covariate"] = list(self.covariates)
+            data_vars["z"] = (("person", "covariate"), self.Z)
+        ds = xr.Dataset(data_vars, coords=coords)
+        ds.attrs["description"] = "hierchoice panel: the real rows (available alternatives of real tasks), CSR offsets"
+        return ds
+
+    @staticmethod
+    def cells_of(ds: xr.Dataset) -> PanelCells:
+        """The :class:`PanelCells` of a :meth:`cells_dataset`."""
+        return PanelCells(
+            x=np.ascontiguousarray(ds["row_x"].values, dtype=float), alt=ds["row_alternative"].values.astype(np.int64),
+            row_ptr=ds["row_ptr"].values.astype(np.int64), person_ptr=ds["person_ptr"].values.astype(np.int64),
+            chosen=ds["task_chosen"].values.astype(np.int64), position=ds["task_position"].values.astype(np.int64),
+            task_id=ds["task_id"].values.astype(object), lag_missing=ds["task_lag_missing"].values.astype(bool),
+        )
+
     def to_long(self) -> pd.DataFrame:
         """The panel back as a long table of model columns (coded attributes, available rows only)."""
         cols = self.spec.columns

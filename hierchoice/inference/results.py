@@ -9,7 +9,8 @@ A results folder holds
     ArviZ InferenceData as NetCDF (one HDF5 group per InferenceData group), format
     :data:`FOLDER_FORMAT`: posterior (reported variables only; person tastes as
     float32), sample_stats, observed_data (``chosen`` over ``obs``, one per real task),
-    constant_data (the panel arrays) and, when the fit has one, posterior_predictive;
+    constant_data (the panel's real rows, :meth:`ChoicePanel.cells_dataset`; formats 1 and 2 held padded arrays)
+    and, when the fit has one, posterior_predictive;
     every variable chunked and compressed (see :func:`save_fit`). The task-level
     log_likelihood is not stored when person draws are (it is rebuilt from them by
     :func:`hierchoice.diagnostics.loo.task_loo`); the posterior's attributes carry the
@@ -241,7 +242,7 @@ def _attrs_for(result: ChoiceFit) -> dict[str, str]:
 #: The layout of ``posterior.nc`` this version writes (attribute ``hierchoice_folder_format`` of the posterior).
 #: 1 (no attribute): float64, uncompressed, ``observed_data.chosen`` over (person, task); still read.
 #: 2: person draws as float32, every variable chunked and compressed, ``observed_data.chosen`` over ``obs``.
-FOLDER_FORMAT = 2
+FOLDER_FORMAT = 3
 #: Posterior variables stored as float32 (see :func:`save_fit`).
 FLOAT32_VARS = ("person_taste", "person_wtp")
 _DRAWS_PER_CHUNK = 100
@@ -343,7 +344,16 @@ def load_fit(folder: str | Path) -> ChoiceFit:
         covariates=tuple(summary_d["covariates"]), removed=summary_d["removed"], filled=summary_d["filled"],
         notes=summary_d["notes"],
     )
-    task_mask = const["task_mask"].values.astype(bool)
+    Z = const["z"].values if "z" in const else np.zeros((const.sizes["person"], 0))
+    labels = {"persons": const["person"].values.tolist(), "alternatives": [str(a) for a in const["alternative"].values],
+              "terms": [Term(**t) for t in terms_d],
+              "covariates": [str(c) for c in const["covariate"].values] if "z" in const else [],
+              "summary": summary, "spec": spec}
+    if "row_ptr" in const:  # format 3: the real rows
+        cells_ds = const.assign(task_chosen=("task", obs["chosen"].values.astype(np.int64)))
+        panel = ChoicePanel(cells=ChoicePanel.cells_of(cells_ds), Z=Z, **labels)
+        return ChoiceFit(idata=idata, panel=panel, spec=spec, layout=model_layout(panel, spec), info=info)
+    task_mask = const["task_mask"].values.astype(bool)  # formats 1 and 2: padded (person, task, ...) arrays
     if obs["chosen"].dims == ("person", "task"):  # format 1
         chosen = obs["chosen"].values.astype(np.int64)
     else:  # format 2: over the real tasks in (person, task) order
@@ -353,11 +363,6 @@ def load_fit(folder: str | Path) -> ChoiceFit:
     task_ids[~task_mask] = None
     panel = ChoicePanel(
         X=const["x"].values, available=const["available"].values.astype(bool), task_mask=task_mask,
-        chosen=chosen, task_ids=task_ids,
-        lag_missing=const["lag_missing"].values.astype(bool),
-        Z=const["z"].values if "z" in const else np.zeros((const.sizes["person"], 0)),
-        persons=const["person"].values.tolist(), alternatives=[str(a) for a in const["alternative"].values],
-        terms=[Term(**t) for t in terms_d], covariates=[str(c) for c in const["covariate"].values] if "z" in const else [],
-        summary=summary, spec=spec,
+        chosen=chosen, task_ids=task_ids, lag_missing=const["lag_missing"].values.astype(bool), Z=Z, **labels,
     )
     return ChoiceFit(idata=idata, panel=panel, spec=spec, layout=model_layout(panel, spec), info=info)

@@ -433,7 +433,7 @@ def _tidy_idata(idata: Any, panel: ChoicePanel, keep: list[str]) -> Any:
 
     ``observed_data.chosen`` is the chosen alternative's position in ``alternatives`` (attribute
     ``alternatives``) over ``obs``, the dim of the log-likelihood and of replicated choices, so ArviZ
-    pairs them; ``constant_data`` holds the panel's (person, task, ...) arrays.
+    pairs them; ``constant_data`` holds the panel's real rows (:meth:`ChoicePanel.cells_dataset`).
     """
     import arviz as az
 
@@ -443,12 +443,12 @@ def _tidy_idata(idata: Any, panel: ChoicePanel, keep: list[str]) -> Any:
         groups["sample_stats"] = idata.sample_stats
     for name, ds in list(groups.items()):
         groups[name] = ds.assign_coords({d: np.arange(ds.sizes[d]) for d in ("chain", "draw") if d in ds.dims})
-    ds = panel.to_xarray()
-    p_idx, t_idx, coords = _obs_index(panel)
-    chosen = xr.DataArray(panel.chosen[p_idx, t_idx].astype(np.int64), dims=("obs",), coords=coords, name="chosen",
+    _, _, coords = _obs_index(panel)
+    chosen = xr.DataArray(panel.cells.chosen.astype(np.int64), dims=("obs",), coords=coords, name="chosen",
                           attrs={"alternatives": [str(a) for a in panel.alternatives]})
     groups["observed_data"] = xr.Dataset({"chosen": chosen})
-    groups["constant_data"] = ds.drop_vars(["chosen"])
+    # the panel's real rows only (linear in the data however unbalanced; padded grids are built on demand)
+    groups["constant_data"] = panel.cells_dataset().drop_vars(["task_chosen"])
     return az.InferenceData(**groups)
 
 
