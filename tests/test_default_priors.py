@@ -139,9 +139,9 @@ def test_100_households_defaults_cover_true_constant_sds_and_are_not_prior_sensi
     realised 4.75 and both SDs' prior sensitivities are 0.25 and 0.30, so the test fails.
     """
     result, true_sd, table = _fit(100, seed=0)
-    summary = result.population()
+    summary = result.population().set_index(["quantity", "attribute"])  # the one population table (90 % intervals)
     for name, truth in zip(("asc:b", "asc:c"), true_sd):
-        row = summary.loc[f"taste_sd[{name}]"]
+        row = summary.loc[("population_sd", name)]
         assert row["eti_low"] < truth < row["eti_high"], (name, truth, row.to_dict())
     assert (table["prior"] < 0.05).all(), table
     assert (table["diagnosis"] == "").all()

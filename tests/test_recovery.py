@@ -119,6 +119,7 @@ def test_stochastic_advi_population_means_near_nuts_on_b1():
     # means: NUTS's MCSE = SD / sqrt(ESS) (ESS >= 100, the checks' fail line, asserted: <= 0.1 posterior SDs) and
     # ADVI's 500 independent draws (<= 0.045 SDs), together <= 0.11 SDs. With the largest z measured in nine runs
     # (1.72, see above) the chance of crossing 2 is P(N(0, 0.11^2) > 0.28) = 0.5 % (normal): the false-alarm rate.
-    ess = parameter_diagnostics(nuts.idata).loc[rows, "ess_bulk"]
+    names = {"population_mean": "taste_mean", "population_sd": "taste_sd"}  # the posterior's variable names
+    ess = parameter_diagnostics(nuts.idata).loc[[f"{names[q]}[{attr}]" for q, attr in rows], "ess_bulk"]
     assert (ess >= 100).all(), ess
     assert (z < 2).all(), z
